@@ -1,0 +1,5 @@
+"""``python -m passby`` runs the command-line interface."""
+
+from passby.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,221 @@
+"""Blocks of samples in, pass-by events out: the one pipeline of passby.
+
+``passby analyze`` feeds it a file's blocks; ``passby station`` feeds it a
+microphone's (or a replay's). Nothing here knows where the samples came
+from, so the same audio gives the same numbers either way::
+
+    samples -> Decimator -> FrameAnalyser -> Tracker -> SourceGrouper
+            -> fit_pass (per source) -> PassEvent
+
+Every stage keeps only the state it needs (the decimation filter's
+history, about twenty seconds of per-bin background summaries, the open
+tracks and the ended tracks awaiting their group), so memory does not grow
+with the length of the stream.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections import deque
+
+import numpy as np
+
+from passby.events import PassEvent
+from passby.fitting import fit_pass, track_data
+from passby.physics import speed_of_sound
+from passby.settings import AnalysisSettings
+from passby.spectral import Decimator, FrameAnalyser, decimation_factor, make_geometry
+from passby.tracking import SourceGrouper, Tracker, fall_ratio
+
+log = logging.getLogger(__name__)
+
+#: Smallest early-to-late frequency ratio of a pass-by: 0.4 % (a source at
+#: about 2.5 km/h, or the part of a slow pass that was recorded).
+MIN_FALL_RATIO = 1.004
+#: Two events closer than this in time and speed are one vehicle.
+SAME_VEHICLE_S, SAME_VEHICLE_REL = 1.0, 0.05
+
+
+class Pipeline:
+    """Incremental pass-by analysis of one mono stream.
+
+    Parameters
+    ----------
+    sample_rate : int
+        Sampling rate of the blocks, Hz (8 kHz to 192 kHz).
+    settings : AnalysisSettings, optional
+
+    Notes
+    -----
+    Call :meth:`push` with consecutive blocks of any length; it returns the
+    events completed so far (a vehicle's event is complete once it has
+    receded and the tracks around it have settled, some seconds later).
+    Call :meth:`push_gap` for samples that were lost (the time base stays
+    right, and events touching the gap count it in ``dropped_blocks``).
+    Call :meth:`finish` at the end of the stream for the events still
+    open. Event times are seconds from the first sample.
+
+    Examples
+    --------
+    >>> p = Pipeline(16000)
+    >>> p.push(np.zeros(16000)), p.finish()
+    ([], [])
+    """
+
+    def __init__(self, sample_rate: int, settings: AnalysisSettings | None = None):
+        self.sample_rate = int(sample_rate)
+        self.settings = s = settings or AnalysisSettings()
+        self.c = speed_of_sound(s.temperature_c, s.humidity_pct, s.pressure_pa)
+        q = decimation_factor(self.sample_rate, s.f_max_hz)
+        self.decimator = Decimator(self.sample_rate, q, s.f_max_hz)
+        self.geometry = make_geometry(self.sample_rate / q, s.f_min_hz, s.f_max_hz,
+                                      self.decimator.delay_s)
+        self.frames = FrameAnalyser(self.geometry, s.threshold_db)
+        self.tracker = Tracker(self.geometry, min_track_s=s.min_track_s)
+        self.grouper = SourceGrouper(self.geometry)
+        self.samples_in = 0
+        self._gaps = deque(maxlen=4096)      # (start_s, end_s, blocks)
+        self._recent = deque(maxlen=16)      # events emitted, for de-duplication
+        self._level = None
+        self._levels = deque()               # (time_s, LAF dB) for the last minutes
+        if s.level:
+            from passby.level import LevelMeter
+            self._level = LevelMeter(self.sample_rate, offset_db=s.level_offset_db)
+            self._level_step = self._level.step_samples
+            self._level_count = 0
+        #: The tracks behind each event, for figures (kept for the last events).
+        self.tracks_of = {}
+
+    # -- input ----------------------------------------------------------
+    def push(self, block: np.ndarray) -> list:
+        """Analyse the next block of samples (1-D float array)."""
+        x = np.asarray(block, dtype=float).reshape(-1)
+        self.samples_in += x.size
+        if self._level is not None:
+            self._push_level(x)
+        return self._advance(self.decimator.push(x), final=False)
+
+    def push_gap(self, n_samples: int, blocks: int = 1) -> list:
+        """Account for ``n_samples`` lost samples (``blocks`` input blocks)."""
+        n = int(n_samples)
+        if n <= 0:
+            return []
+        start = self.samples_in / self.sample_rate
+        self._gaps.append((start, start + n / self.sample_rate, int(blocks)))
+        out = []
+        step = 1 << 16
+        for i in range(0, n, step):
+            out += self.push(np.zeros(min(step, n - i)))
+        return out
+
+    def finish(self) -> list:
+        """End of stream: the events still open."""
+        events = self._advance(self.decimator.flush(), final=False)
+        peaks = self.frames.finish()
+        ended = []
+        for pk in peaks:
+            ended += self.tracker.push(pk)
+        ended += self.tracker.finish()
+        groups = self.grouper.push(ended, [], self.tracker.frame, final=True)
+        return events + self._events_from(groups)
+
+    # -- stages -----------------------------------------------------------
+    def _advance(self, y: np.ndarray, final: bool) -> list:
+        groups = []
+        for pk in self.frames.push(y):
+            ended = self.tracker.push(pk)
+            groups += self.grouper.push(ended, self.tracker.open, self.tracker.frame)
+        return self._events_from(groups)
+
+    def _events_from(self, groups) -> list:
+        found = [ev for ev in (self._event(tracks) for tracks in groups) if ev is not None]
+        # Best first, so that of two sources found for one vehicle the better stays.
+        found.sort(key=_merit)
+        events = []
+        for ev in found:
+            if not any(_same_vehicle(ev, old) for old in list(self._recent) + events):
+                events.append(ev)
+            else:
+                log.debug("second source of the vehicle at %.1f s dropped", ev.pass_time_s)
+        self._recent.extend(events)
+        events.sort(key=lambda e: e.pass_time_s if math.isfinite(e.pass_time_s) else e.start_s)
+        return events
+
+    def _event(self, tracks):
+        main = tracks[0]
+        if fall_ratio(main) < MIN_FALL_RATIO:
+            log.debug("tracks at %.0f Hz from %.1f s: no Doppler fall, not a pass-by",
+                      main.freq_hz.mean(), self.geometry.frame_time(main.start))
+            return None
+        data = track_data(tracks, self.geometry)
+        sigma_p = self.geometry.sigma_s / math.sqrt(2.0)
+        fit = fit_pass(data, self.c, sigma_p, self.settings.wind_mps, self.geometry.hop_s)
+        start_s, end_s = float(data.t.min()), float(data.t.max())
+        ev = PassEvent(
+            pass_time_s=fit.pass_time_s,
+            speed_mps=fit.speed_mps,
+            speed_std_mps=fit.speed_std_mps,
+            tones_hz=fit.tones_hz,
+            closest_approach_m=fit.closest_m,
+            closest_approach_std_m=fit.closest_std_m,
+            speed_of_sound_mps=self.c,
+            temperature_c=self.settings.temperature_c,
+            quality=fit.quality,
+            reason=fit.reason,
+            residual_hz=fit.residual_hz,
+            start_s=start_s,
+            end_s=end_s,
+            n_frames=fit.n_points,
+            method=fit.method,
+            humidity_pct=self.settings.humidity_pct,
+            laf_max_db=self._laf_max(start_s, end_s),
+            level_calibrated=self.settings.level_offset_db is not None,
+            dropped_blocks=self._dropped(start_s, end_s),
+        )
+        self.tracks_of[id(ev)] = tracks
+        while len(self.tracks_of) > 32:
+            self.tracks_of.pop(next(iter(self.tracks_of)))
+        return ev
+
+    def _dropped(self, start_s: float, end_s: float) -> int:
+        return sum(b for a, e, b in self._gaps if e >= start_s and a <= end_s)
+
+    # -- levels -----------------------------------------------------------
+    def _push_level(self, x: np.ndarray):
+        laf = self._level.push(x)
+        if laf.size:
+            t = (self._level_count + 1 + np.arange(laf.size)) * self._level_step / self.sample_rate
+            self._level_count += laf.size
+            self._levels.extend(zip(t.tolist(), laf.tolist()))
+            horizon = t[-1] - 300.0
+            while self._levels and self._levels[0][0] < horizon:
+                self._levels.popleft()
+
+    def _laf_max(self, start_s: float, end_s: float):
+        if self._level is None:
+            return None
+        vals = [v for t, v in self._levels if start_s - 0.5 <= t <= end_s + 0.5]
+        return float(max(vals)) if vals else None
+
+
+def _merit(ev: PassEvent):
+    """Sort key, best event first: quality, then the smaller uncertainty."""
+    std = ev.speed_std_mps if math.isfinite(ev.speed_std_mps) else math.inf
+    return (("good", "fair", "rejected").index(ev.quality), std)
+
+
+def _same_vehicle(a: PassEvent, b: PassEvent) -> bool:
+    """Two events that are one vehicle seen twice (a harmonic, a broken track).
+
+    They pass within ``SAME_VEHICLE_S`` of each other and either agree in
+    speed within ``SAME_VEHICLE_REL`` or share a tone within 10 %.
+    """
+    if not (math.isfinite(a.pass_time_s) and math.isfinite(b.pass_time_s)):
+        return False
+    if abs(a.pass_time_s - b.pass_time_s) >= SAME_VEHICLE_S:
+        return False
+    if abs(a.speed_mps - b.speed_mps) < SAME_VEHICLE_REL * max(a.speed_mps, b.speed_mps):
+        return True
+    return any(abs(x - y) < 0.1 * max(x, y) for x in a.tones_hz for y in b.tones_hz
+               if math.isfinite(x) and math.isfinite(y))

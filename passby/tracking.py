@@ -1,0 +1,318 @@
+"""From spectral peaks to tone tracks, and from tracks to sources.
+
+A *track* is one tone followed from frame to frame. A *source* is the set
+of tracks that one vehicle makes: the harmonics of an engine or the tones
+of a horn chord. At every instant all tones of one source carry the same
+Doppler factor, so in log-frequency they are parallel curves: two tracks
+belong to one source when the difference of their log-frequencies stays
+constant while both sweep through the pass.
+
+Everything here runs frame by frame and never looks back at audio, so the
+live station and the offline analysis find the same tracks.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from passby.spectral import FrameGeometry, Peaks
+
+
+@dataclass(frozen=True)
+class Track:
+    """One tone followed over time.
+
+    Attributes
+    ----------
+    frame : ndarray of int
+        Frame indices (increasing, gaps allowed).
+    freq_hz : ndarray
+        Sub-bin frequency in each frame.
+    snr_db : ndarray
+        Height of the peak above the whitened background.
+    """
+
+    frame: np.ndarray
+    freq_hz: np.ndarray
+    snr_db: np.ndarray
+
+    @property
+    def start(self) -> int:
+        return int(self.frame[0])
+
+    @property
+    def end(self) -> int:
+        return int(self.frame[-1])
+
+    @property
+    def strength(self) -> float:
+        """Sum of the linear SNR over the track (its total evidence)."""
+        return float(np.sum(10.0 ** (np.minimum(self.snr_db, 40.0) / 10.0)))
+
+
+class _Open:
+    """A track still being followed (mutable, internal)."""
+
+    __slots__ = ("frame", "freq", "snr", "slope")
+
+    def __init__(self, frame, freq, snr):
+        self.frame, self.freq, self.snr = [frame], [freq], [snr]
+        self.slope = 0.0
+
+    def predict(self, frame):
+        return self.freq[-1] + self.slope * (frame - self.frame[-1])
+
+    def add(self, frame, freq, snr):
+        self.frame.append(frame)
+        self.freq.append(freq)
+        self.snr.append(snr)
+        k = min(3, len(self.frame) - 1)
+        self.slope = (self.freq[-1] - self.freq[-1 - k]) / (self.frame[-1] - self.frame[-1 - k])
+
+    def freeze(self) -> Track:
+        return Track(np.asarray(self.frame), np.asarray(self.freq), np.asarray(self.snr))
+
+
+class Tracker:
+    """Frame-to-frame continuity of spectral peaks.
+
+    Each open track predicts its next frequency from its last frequency and
+    slope. A peak continues the track whose prediction is nearest, within a
+    tolerance of ``max(2 bins, rel_tol * f)`` that widens with the gap and,
+    downwards only, with the track's fall rate: a passing source's pitch
+    only falls, and at a close pass it falls fast. A track not continued
+    for ``max_gap_s`` ends; tracks shorter than ``min_track_s`` are dropped.
+
+    Parameters
+    ----------
+    geometry : FrameGeometry
+    min_track_s, max_gap_s, max_track_s : float
+        A track longer than ``max_track_s`` (a steady line) is cut there.
+    rel_tol : float
+    """
+
+    def __init__(self, geometry: FrameGeometry, min_track_s: float = 0.8, max_gap_s: float = 0.3,
+                 max_track_s: float = 120.0, rel_tol: float = 0.01):
+        self.g = geometry
+        self.min_frames = max(3, int(round(min_track_s / geometry.hop_s)))
+        self.max_gap = max(1, int(round(max_gap_s / geometry.hop_s)))
+        self.max_frames = int(round(max_track_s / geometry.hop_s))
+        self.rel_tol = float(rel_tol)
+        self.open: list[_Open] = []
+        self.frame = -1   # last frame processed
+
+    def push(self, peaks: Peaks) -> list:
+        """Process a run of frames' peaks; returns the tracks that ended."""
+        done = []
+        fr, f, s = peaks.frame, peaks.freq_hz, peaks.snr_db
+        bounds = np.flatnonzero(np.diff(fr)) + 1 if fr.size else np.empty(0, int)
+        starts = np.r_[0, bounds] if fr.size else np.empty(0, int)
+        stops = np.r_[bounds, fr.size] if fr.size else np.empty(0, int)
+        for a, b in zip(starts.tolist(), stops.tolist()):
+            frame = int(fr[a])
+            self._expire(frame, done)
+            self._assign(frame, f[a:b].tolist(), s[a:b].tolist())
+            self.frame = frame
+        self.frame = max(self.frame, peaks.first_frame + peaks.n_frames - 1)
+        self._expire(self.frame + 1, done)
+        return done
+
+    def finish(self) -> list:
+        """End of stream: close every open track."""
+        done = []
+        for t in self.open:
+            self._close(t, done)
+        self.open = []
+        return done
+
+    def _close(self, t: _Open, done: list):
+        if len(t.frame) >= self.min_frames:
+            done.append(t.freeze())
+
+    def _expire(self, frame: int, done: list):
+        keep, ended = [], []
+        for t in self.open:
+            if frame - t.frame[-1] > self.max_gap:
+                ended.append(t)
+            elif len(t.frame) >= self.max_frames:
+                self._close(t, done)
+            else:
+                keep.append(t)
+        for t in ended:
+            succ = self._successor(t, keep)
+            if succ is None:
+                self._close(t, done)
+            else:   # the same tone after a jump or a dropout: one track
+                succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame, t.freq, t.snr
+        self.open = keep
+
+    def _successor(self, t: _Open, candidates: list):
+        """A track that began just after ``t`` ended, where ``t`` was heading.
+
+        At a close, fast pass the pitch falls faster than a frame can
+        follow, and an interference null can hide a tone for a moment: the
+        piece after the break continues the piece before it.
+        """
+        best, best_key = None, None
+        end, f_end = t.frame[-1], t.freq[-1]
+        for o in candidates:
+            s = o.frame[0]
+            if not (end < s <= end + self.max_gap):
+                continue
+            pred = max(t.predict(s), 0.5 * f_end)
+            tol = max(2.0 * self.g.bin_hz, 0.05 * f_end)
+            if abs(o.freq[0] - pred) <= tol and o.freq[0] <= f_end * 1.003:
+                key = (s - end, abs(o.freq[0] - pred))
+                if best_key is None or key < best_key:
+                    best, best_key = o, key
+        return best
+
+    def _assign(self, frame: int, freqs: list, snrs: list):
+        bin2 = 2.0 * self.g.bin_hz
+        pairs = []
+        for i, t in enumerate(self.open):
+            gap = frame - t.frame[-1]
+            pred = t.predict(frame)
+            tol = max(bin2, self.rel_tol * pred) * (1.0 + 0.5 * (gap - 1))
+            fall = max(0.0, -t.slope) * gap
+            lo, hi = pred - tol - 2.0 * fall, pred + tol
+            for j, fj in enumerate(freqs):
+                if lo <= fj <= hi:
+                    pairs.append((abs(fj - pred) / tol, i, j))
+        used_t, used_p = set(), set()
+        if pairs:
+            pairs.sort()
+            for _, i, j in pairs:
+                if i in used_t or j in used_p:
+                    continue
+                self.open[i].add(frame, freqs[j], snrs[j])
+                used_t.add(i)
+                used_p.add(j)
+        for j, fj in enumerate(freqs):
+            if j not in used_p:
+                self.open.append(_Open(frame, fj, snrs[j]))
+
+
+def log_ratio_stability(a: Track, b: Track, min_overlap: int):
+    """How parallel two tracks are in log-frequency over their common frames.
+
+    Returns
+    -------
+    (median_ratio, spread, sweep) or None
+        ``median_ratio`` is the median of ``ln f_a - ln f_b``, ``spread``
+        its robust standard deviation (1.4826 MAD) and ``sweep`` the range of
+        ``ln f_a`` over the common frames. None when they share fewer than
+        ``min_overlap`` frames.
+    """
+    common, ia, ib = np.intersect1d(a.frame, b.frame, assume_unique=True, return_indices=True)
+    if common.size < min_overlap:
+        return None
+    la, lb = np.log(a.freq_hz[ia]), np.log(b.freq_hz[ib])
+    d = la - lb
+    med = float(np.median(d))
+    spread = 1.4826 * float(np.median(np.abs(d - med)))
+    lo, hi = np.percentile(la, [10, 90])
+    return med, spread, float(hi - lo)
+
+
+def same_source(a: Track, b: Track, min_overlap: int, max_spread: float = 0.002,
+                min_sweep: float = 0.004) -> bool:
+    """Whether two tracks are tones of one source (parallel in log-frequency).
+
+    They must share ``min_overlap`` frames, their log-frequency difference
+    must stay within ``max_spread`` (robust s.d.) while the tracks sweep by
+    at least ``min_sweep`` in log-frequency (two unrelated steady lines are
+    parallel too, so only a shared sweep is evidence), and they must be
+    different tones (ratio at least 2 %).
+    """
+    r = log_ratio_stability(a, b, min_overlap)
+    if r is None:
+        return False
+    med, spread, sweep = r
+    return abs(med) > 0.02 and spread < max_spread and sweep > min_sweep
+
+
+class SourceGrouper:
+    """Collects ended tracks and releases them grouped by source.
+
+    A group is released once none of its tracks is open any more, no open
+    track that overlaps it in time could still join it, and ``settle_s``
+    has passed since its last frame.
+
+    Parameters
+    ----------
+    geometry : FrameGeometry
+    settle_s : float
+    max_wait_s : float
+        A track is released at the latest this long after it ended.
+    """
+
+    def __init__(self, geometry: FrameGeometry, settle_s: float = 1.0, max_wait_s: float = 90.0):
+        self.g = geometry
+        self.settle = int(round(settle_s / geometry.hop_s))
+        self.max_wait = int(round(max_wait_s / geometry.hop_s))
+        self.min_overlap = max(5, int(round(0.4 / geometry.hop_s)))
+        self.pool: list[Track] = []
+
+    def push(self, ended: list, open_tracks: list, frame: int, final: bool = False) -> list:
+        """Add ended tracks; returns the groups (lists of Track) now complete."""
+        self.pool.extend(ended)
+        if not self.pool:
+            return []
+        n = len(self.pool)
+        parent = list(range(n))
+
+        def root(i):
+            while parent[i] != i:
+                parent[i] = parent[parent[i]]
+                i = parent[i]
+            return i
+
+        for i in range(n):
+            for j in range(i + 1, n):
+                a, b = self.pool[i], self.pool[j]
+                if a.end < b.start or b.end < a.start:
+                    continue
+                if same_source(a, b, self.min_overlap):
+                    parent[root(i)] = root(j)
+        groups = {}
+        for i in range(n):
+            groups.setdefault(root(i), []).append(self.pool[i])
+        out, keep = [], []
+        for members in groups.values():
+            end = max(t.end for t in members)
+            start = min(t.start for t in members)
+            ready = final or frame - end >= self.max_wait
+            if not ready and frame - end >= self.settle:
+                ready = not any(o.frame[0] <= end and len(o.frame) >= self.min_overlap
+                                and o.frame[-1] - o.frame[0] < self.max_wait
+                                and _open_overlaps(o, start) for o in open_tracks)
+            if ready:
+                out.append(sorted(members, key=lambda t: -t.strength))
+            else:
+                keep.extend(members)
+        self.pool = keep
+        out.sort(key=lambda m: min(t.start for t in m))
+        return out
+
+
+def _open_overlaps(o, start: int) -> bool:
+    return o.frame[-1] >= start
+
+
+def fall_ratio(track: Track, part: float = 0.2) -> float:
+    """Ratio of the track's early to late frequency (medians of the ends).
+
+    Greater than one for a passing source; about one for a steady line.
+
+    Examples
+    --------
+    >>> t = Track(np.arange(10), np.r_[[110.0] * 5, [90.0] * 5], np.zeros(10))
+    >>> round(fall_ratio(t), 4)
+    1.2222
+    """
+    n = max(1, int(math.ceil(part * track.frame.size)))
+    return float(np.median(track.freq_hz[:n]) / np.median(track.freq_hz[-n:]))

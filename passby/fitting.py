@@ -51,6 +51,8 @@ class TrackData:
     tone : ndarray of int
         Which tone (0 = strongest) each measurement belongs to.
     n_tones : int
+    sigma_p : ndarray
+        S.d. of the power window of the frame behind each measurement, s.
     """
 
     t: np.ndarray
@@ -58,6 +60,12 @@ class TrackData:
     snr_db: np.ndarray
     tone: np.ndarray
     n_tones: int
+    sigma_p: np.ndarray
+
+    def take(self, index) -> "TrackData":
+        """The measurements at ``index`` (a slice or an index array)."""
+        return TrackData(self.t[index], self.f[index], self.snr_db[index], self.tone[index],
+                         self.n_tones, self.sigma_p[index])
 
 
 @dataclass(frozen=True)
@@ -86,6 +94,8 @@ class FitResult:
 def windowed_factor(t, v, d, t0, c, sigma_p):
     """Doppler factor averaged over a Gaussian power window of s.d. ``sigma_p``.
 
+    ``sigma_p`` may be a scalar or an array like ``t``.
+
     The mean frequency of a spectrogram frame of a slowly varying tone is
     the instantaneous frequency averaged with the window's power as weight;
     a three-point Gauss-Hermite rule integrates it.
@@ -94,12 +104,13 @@ def windowed_factor(t, v, d, t0, c, sigma_p):
     --------
     Far from the pass the average is the plain factor:
 
-    >>> round(float(windowed_factor(np.array([-50.0]), 20.0, 5.0, 0.0, 343.2, 0.01)[0]), 6)
-    1.062069
+    >>> t = np.array([-50.0])
+    >>> a = windowed_factor(t, 20.0, 5.0, 0.0, 343.2, 0.01)
+    >>> b = doppler_factor(t, 20.0, 5.0, 0.0, 343.2)
+    >>> bool(abs(a[0] - b[0]) < 1e-9), round(float(b[0]), 5)   # 1 / (1 - 20 / 343.2)
+    (True, 1.06188)
     """
     t = np.asarray(t, dtype=float)
-    if sigma_p <= 0:
-        return doppler_factor(t, v, d, t0, c)
     acc = np.zeros_like(t)
     for node, weight in zip(_GH_NODES, _GH_WEIGHTS):
         acc += weight * doppler_factor(t + node * sigma_p, v, d, t0, c)
@@ -143,10 +154,42 @@ def integrated_autocorrelation(x: np.ndarray, max_lag: int = 30) -> float:
     return tau
 
 
-def _residuals(theta, data: TrackData, sw, c, sigma_p):
+def error_inflation(res: np.ndarray, t: np.ndarray, max_lag: int = 300) -> float:
+    """How much correlated residuals inflate the variance of a fit.
+
+    The residuals of one frame (all tones) are summed, since the tones of
+    one source share its pitch wander; the inflation is the ratio of the
+    variance of the total residual, allowing for the autocorrelation of
+    the per-frame sums over time, to the variance independent residuals
+    would give: ``tau * sum_p s_p^2 / sum_i e_i^2``.
+
+    Examples
+    --------
+    Independent residuals, one tone:
+
+    >>> rng = np.random.default_rng(1)
+    >>> round(error_inflation(rng.standard_normal(5000), np.arange(5000.0)), 1)
+    1.0
+
+    Two tones with identical errors: the second adds no information.
+
+    >>> e = rng.standard_normal(3000)
+    >>> round(error_inflation(np.r_[e, e], np.r_[np.arange(3000.0), np.arange(3000.0)]), 1)
+    2.0
+    """
+    denom = float(np.dot(res, res))
+    if denom <= 0 or res.size < 8:
+        return 1.0
+    times, inv = np.unique(t, return_inverse=True)
+    sums = np.bincount(inv, weights=res, minlength=times.size)
+    tau = integrated_autocorrelation(sums, max_lag)
+    return max(1.0, tau * float(np.dot(sums, sums)) / denom)
+
+
+def _residuals(theta, data: TrackData, sw, c):
     v, d, t0 = theta[0], theta[1], theta[2]
     f0 = theta[3:][data.tone]
-    model = f0 * windowed_factor(data.t, v, d, t0, c, sigma_p)
+    model = f0 * windowed_factor(data.t, v, d, t0, c, data.sigma_p)
     return (data.f - model) * sw
 
 
@@ -193,8 +236,7 @@ def _initial_guesses(data: TrackData, c, wind_mps):
     return starts, (fa, fr, v0, f00)
 
 
-def fit_pass(data: TrackData, c: float, sigma_p: float, wind_mps: float = 0.0,
-             hop_s: float = 0.01) -> FitResult:
+def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     """Fit the exact moving-source model to one source's measurements.
 
     Parameters
@@ -202,13 +244,8 @@ def fit_pass(data: TrackData, c: float, sigma_p: float, wind_mps: float = 0.0,
     data : TrackData
     c : float
         Speed of sound, m/s.
-    sigma_p : float
-        S.d. of the analysis window's power, s (0: instantaneous model).
     wind_mps : float
-        Wind along the direction of travel (used by the starting guess and
-        the plateau fallback).
-    hop_s : float
-        Frame hop, s (for the duration checks).
+        Wind along the direction of travel (used by the starting guess).
 
     Returns
     -------
@@ -236,13 +273,13 @@ def fit_pass(data: TrackData, c: float, sigma_p: float, wind_mps: float = 0.0,
     upper = np.r_[0.6 * c, 1000.0, t_hi + 30.0, np.full(data.n_tones, 40000.0)]
     best = None
     thin = slice(None, None, max(1, n // 300))
-    sub = TrackData(data.t[thin], data.f[thin], data.snr_db[thin], data.tone[thin], data.n_tones)
+    sub = data.take(thin)
     sw_sub = sw[thin]
     for x0 in starts:
         x0 = np.clip(x0, lower + 1e-9, upper - 1e-9)
         try:
             r = scipy.optimize.least_squares(_residuals, x0, bounds=(lower, upper), loss="soft_l1",
-                                             f_scale=2.0, args=(sub, sw_sub, c, sigma_p),
+                                             f_scale=2.0, args=(sub, sw_sub, c),
                                              x_scale="jac", max_nfev=60)
         except (ValueError, np.linalg.LinAlgError):
             continue
@@ -251,17 +288,17 @@ def fit_pass(data: TrackData, c: float, sigma_p: float, wind_mps: float = 0.0,
     if best is None:
         return _rejected("fit did not converge", data, c, tones)
     # Refine on all points with a robust scale from the first fit.
-    res0 = _residuals(best.x, data, sw, c, sigma_p)
+    res0 = _residuals(best.x, data, sw, c)
     scale = max(1.4826 * float(np.median(np.abs(res0))), 1e-3)
     r = scipy.optimize.least_squares(_residuals, best.x, bounds=(lower, upper), loss="soft_l1",
-                                     f_scale=2.0 * scale, args=(data, sw, c, sigma_p),
+                                     f_scale=2.0 * scale, args=(data, sw, c),
                                      x_scale="jac", max_nfev=200)
     theta = r.x
-    res = _residuals(theta, data, sw, c, sigma_p)
+    res = _residuals(theta, data, sw, c)
     s = 1.4826 * float(np.median(np.abs(res)))
     raw = res / sw
     resid_hz = 1.4826 * float(np.median(np.abs(raw)))
-    tau = max(integrated_autocorrelation(raw[data.tone == k]) for k in range(data.n_tones))
+    tau = error_inflation(res, data.t)
     J = r.jac
     try:
         cov = np.linalg.pinv(J.T @ J) * s * s * tau
@@ -307,10 +344,14 @@ def _rejected(reason, data, c, tones):
                      "rejected", reason, c)
 
 
-def track_data(tracks, geometry) -> TrackData:
-    """Flatten a source's tracks (strongest first) for :func:`fit_pass`."""
-    t = np.concatenate([geometry.frame_time(tr.frame) for tr in tracks])
+def track_data(tracks, timebase, sigma_at) -> TrackData:
+    """Flatten a source's tracks (strongest first) for :func:`fit_pass`.
+
+    ``sigma_at(f)`` gives the amplitude window s.d. that measured each
+    frequency; the power window's is that over sqrt 2.
+    """
+    t = np.concatenate([timebase.frame_time(tr.frame) for tr in tracks])
     f = np.concatenate([tr.freq_hz for tr in tracks])
     s = np.concatenate([tr.snr_db for tr in tracks])
     k = np.concatenate([np.full(tr.frame.size, i) for i, tr in enumerate(tracks)])
-    return TrackData(t, f, s, k, len(tracks))
+    return TrackData(t, f, s, k, len(tracks), sigma_at(f) / math.sqrt(2.0))

@@ -22,10 +22,10 @@ from collections import deque
 import numpy as np
 
 from passby.events import PassEvent
-from passby.fitting import fit_pass, track_data
+from passby.fitting import fit_pass, track_data, windowed_factor
 from passby.physics import speed_of_sound
 from passby.settings import AnalysisSettings
-from passby.spectral import Decimator, FrameAnalyser, decimation_factor, make_geometry
+from passby.spectral import FrontEnd
 from passby.tracking import SourceGrouper, Tracker, fall_ratio
 
 log = logging.getLogger(__name__)
@@ -67,13 +67,10 @@ class Pipeline:
         self.sample_rate = int(sample_rate)
         self.settings = s = settings or AnalysisSettings()
         self.c = speed_of_sound(s.temperature_c, s.humidity_pct, s.pressure_pa)
-        q = decimation_factor(self.sample_rate, s.f_max_hz)
-        self.decimator = Decimator(self.sample_rate, q, s.f_max_hz)
-        self.geometry = make_geometry(self.sample_rate / q, s.f_min_hz, s.f_max_hz,
-                                      self.decimator.delay_s)
-        self.frames = FrameAnalyser(self.geometry, s.threshold_db)
-        self.tracker = Tracker(self.geometry, min_track_s=s.min_track_s)
-        self.grouper = SourceGrouper(self.geometry)
+        self.front = FrontEnd(self.sample_rate, s.f_min_hz, s.f_max_hz, s.threshold_db)
+        self.timebase = self.front.timebase
+        self.tracker = Tracker(self.timebase, self.front.bin_hz_at, min_track_s=s.min_track_s)
+        self.grouper = SourceGrouper(self.timebase)
         self.samples_in = 0
         self._gaps = deque(maxlen=4096)      # (start_s, end_s, blocks)
         self._recent = deque(maxlen=16)      # events emitted, for de-duplication
@@ -94,7 +91,7 @@ class Pipeline:
         self.samples_in += x.size
         if self._level is not None:
             self._push_level(x)
-        return self._advance(self.decimator.push(x), final=False)
+        return self._advance(self.front.push(x))
 
     def push_gap(self, n_samples: int, blocks: int = 1) -> list:
         """Account for ``n_samples`` lost samples (``blocks`` input blocks)."""
@@ -111,25 +108,33 @@ class Pipeline:
 
     def finish(self) -> list:
         """End of stream: the events still open."""
-        events = self._advance(self.decimator.flush(), final=False)
-        peaks = self.frames.finish()
+        events = []
         ended = []
-        for pk in peaks:
+        for pk in self.front.finish():
             ended += self.tracker.push(pk)
         ended += self.tracker.finish()
         groups = self.grouper.push(ended, [], self.tracker.frame, final=True)
         return events + self._events_from(groups)
 
     # -- stages -----------------------------------------------------------
-    def _advance(self, y: np.ndarray, final: bool) -> list:
+    def _advance(self, peaks) -> list:
         groups = []
-        for pk in self.frames.push(y):
+        for pk in peaks:
             ended = self.tracker.push(pk)
             groups += self.grouper.push(ended, self.tracker.open, self.tracker.frame)
         return self._events_from(groups)
 
     def _events_from(self, groups) -> list:
-        found = [ev for ev in (self._event(tracks) for tracks in groups) if ev is not None]
+        # Strongest source first: a weaker group that is only more tones (or
+        # a fragment) of a vehicle already measured follows its fitted curve.
+        groups = sorted(groups, key=lambda g: -sum(t.strength for t in g))
+        found = []
+        for tracks in groups:
+            if self._explained(tracks, found):
+                continue
+            ev = self._event(tracks)
+            if ev is not None:
+                found.append(ev)
         # Best first, so that of two sources found for one vehicle the better stays.
         found.sort(key=_merit)
         events = []
@@ -142,15 +147,37 @@ class Pipeline:
         events.sort(key=lambda e: e.pass_time_s if math.isfinite(e.pass_time_s) else e.start_s)
         return events
 
+    def _explained(self, tracks, batch) -> bool:
+        """Whether every track follows the fitted curve of a vehicle already found."""
+        for ev in list(self._recent) + batch:
+            if ev.quality == "rejected" or not math.isfinite(ev.speed_mps):
+                continue
+            if all(self._follows(t, ev) for t in tracks):
+                log.debug("tracks at %.0f Hz are tones of the vehicle at %.1f s",
+                          tracks[0].freq_hz.mean(), ev.pass_time_s)
+                return True
+        return False
+
+    def _follows(self, track, ev) -> bool:
+        t = self.timebase.frame_time(track.frame)
+        if t[-1] < ev.start_s - 5.0 or t[0] > ev.end_s + 5.0:
+            return False
+        sigma_p = self.front.sigma_at(track.freq_hz) / math.sqrt(2.0)
+        factor = windowed_factor(t, ev.speed_mps, ev.closest_approach_m, ev.pass_time_s,
+                                 ev.speed_of_sound_mps, sigma_p)
+        rest = track.freq_hz / factor
+        f0 = float(np.median(rest))
+        spread = 1.4826 * float(np.median(np.abs(rest - f0)))
+        return spread < max(0.004 * f0, 1.5 * self.front.bin_hz_at(f0))
+
     def _event(self, tracks):
         main = tracks[0]
         if fall_ratio(main) < MIN_FALL_RATIO:
             log.debug("tracks at %.0f Hz from %.1f s: no Doppler fall, not a pass-by",
-                      main.freq_hz.mean(), self.geometry.frame_time(main.start))
+                      main.freq_hz.mean(), self.timebase.frame_time(main.start))
             return None
-        data = track_data(tracks, self.geometry)
-        sigma_p = self.geometry.sigma_s / math.sqrt(2.0)
-        fit = fit_pass(data, self.c, sigma_p, self.settings.wind_mps, self.geometry.hop_s)
+        data = track_data(tracks, self.timebase, self.front.sigma_at)
+        fit = fit_pass(data, self.c, self.settings.wind_mps)
         start_s, end_s = float(data.t.min()), float(data.t.max())
         ev = PassEvent(
             pass_time_s=fit.pass_time_s,
@@ -180,6 +207,17 @@ class Pipeline:
 
     def _dropped(self, start_s: float, end_s: float) -> int:
         return sum(b for a, e, b in self._gaps if e >= start_s and a <= end_s)
+
+    def tracked_points(self, event: PassEvent) -> list:
+        """The tracked frequencies behind one of the last events, for figures.
+
+        Returns
+        -------
+        list of (times_s, freqs_hz) arrays, one pair per tone; empty when
+        the event is too old to be remembered.
+        """
+        tracks = self.tracks_of.get(id(event), ())
+        return [(self.timebase.frame_time(t.frame), t.freq_hz) for t in tracks]
 
     # -- levels -----------------------------------------------------------
     def _push_level(self, x: np.ndarray):

@@ -38,8 +38,9 @@ class AnalysisSettings:
     level : bool
         Also measure the A-weighted Fast maximum level of each event.
     level_offset_db : float or None
-        Calibration offset: dB re 20 uPa of a full-scale sine is
-        ``level_offset_db`` (None: uncalibrated).
+        Calibration offset: a signal of mean square 1 (digital full scale
+        units) reads ``level_offset_db`` dB re 20 uPa, so a full-scale sine
+        reads 3.01 dB less (None: uncalibrated, dB re full scale).
     """
 
     temperature_c: float = 20.0

@@ -72,7 +72,10 @@ class Decimator:
 
     Notes
     -----
-    Output sample ``j`` stands for input time ``j q / fs - delay_s``.
+    Output sample ``j`` stands for input time ``j q / fs - delay_s``;
+    ``delay_s`` is ``delay_out`` whole output samples (a multiple of
+    ``k_multiple``, so that a second decimator by that factor can follow
+    and keep the delay whole in its own samples).
     The result does not depend on how the input is split into blocks.
 
     References
@@ -81,12 +84,13 @@ class Decimator:
     :func:`scipy.signal.kaiserord`.
     """
 
-    def __init__(self, sample_rate: int, q: int, passband_hz: float):
+    def __init__(self, sample_rate: int, q: int, passband_hz: float, k_multiple: int = 1):
         self.fs = int(sample_rate)
         self.q = int(q)
         self._pending = []
         self._pending_len = 0
         self.delay_s = 0.0
+        self.delay_out = 0
         if self.q == 1:
             return
         fs_out = self.fs / self.q
@@ -94,6 +98,7 @@ class Decimator:
         width = max(stop - passband_hz, 0.05 * stop)
         numtaps, beta = scipy.signal.kaiserord(80.0, width / (0.5 * self.fs))
         k = max(1, math.ceil((numtaps - 1) / (2 * self.q)))
+        k = -(-k // k_multiple) * k_multiple
         m = 2 * k * self.q + 1
         cutoff = min(passband_hz + width / 2.0, stop)
         h = scipy.signal.firwin(m, cutoff, window=("kaiser", beta), fs=self.fs)
@@ -106,6 +111,7 @@ class Decimator:
         self._H = scipy.fft.rfft(h, n_fft)[: n_fft // (2 * self.q) + 1]
         self._history = np.zeros(m - 1)
         self.delay_s = (m - 1) / 2.0 / self.fs
+        self.delay_out = k
 
     def push(self, x: np.ndarray) -> np.ndarray:
         """Filter and decimate the next block; returns the new output samples."""
@@ -149,7 +155,7 @@ class Decimator:
 
 @dataclass(frozen=True)
 class FrameGeometry:
-    """The analysis grid: rate, window, hop and the bins analysed.
+    """The analysis grid of one band: rate, window, hop and bins analysed.
 
     Attributes
     ----------
@@ -161,8 +167,10 @@ class FrameGeometry:
         Window length, transform length and hop, samples.
     k_lo, k_hi : int
         First and last bin searched for peaks.
-    delay_s : float
-        Group delay of the decimation filter, s.
+    start : int
+        Decimated samples skipped before frame 0 starts.
+    t_first : float
+        Centre time of frame 0, seconds from the first input sample.
     """
 
     fs: float
@@ -172,7 +180,8 @@ class FrameGeometry:
     hop: int
     k_lo: int
     k_hi: int
-    delay_s: float
+    start: int = 0
+    t_first: float = 0.0
 
     @property
     def bin_hz(self) -> float:
@@ -184,39 +193,33 @@ class FrameGeometry:
 
     def frame_time(self, p):
         """Centre time of frame ``p``, seconds from the first input sample."""
-        return (np.asarray(p) * self.hop + (self.n_window - 1) / 2.0) / self.fs - self.delay_s
-
-    def spectral_sigma_hz(self) -> float:
-        """Standard deviation of the window's spectral (power) peak, Hz.
-
-        A Gaussian amplitude window of time s.d. sigma has a spectrum of s.d.
-        ``1 / (2 pi sigma)`` in amplitude, ``1 / (2 sqrt(2) pi sigma)`` in power.
-        """
-        return 1.0 / (2.0 * math.sqrt(2.0) * math.pi * self.sigma_s)
+        return self.t_first + np.asarray(p) * self.hop_s
 
 
-def make_geometry(fs: float, f_min_hz: float, f_max_hz: float, delay_s: float = 0.0,
-                  sigma_s: float = 0.012, hop_s: float = 0.01) -> FrameGeometry:
-    """Choose the analysis grid for a rate and a band.
+def make_geometry(fs: float, f_min_hz: float, f_max_hz: float, sigma_s: float = 0.012,
+                  hop: int | None = None) -> FrameGeometry:
+    """Choose the analysis grid for a rate and a band (frame 0 at sample 0).
 
     The window is a Gaussian of s.d. ``sigma_s`` truncated at +-3.5 sigma
     (its sidelobes stay below -80 dB), zero-padded to a power of two at
-    least as long as it.
+    least as long as it. The hop defaults to about 10 ms.
 
     Examples
     --------
     >>> g = make_geometry(12000.0, 60.0, 4500.0)
     >>> g.n_window, g.n_fft, g.hop, round(g.bin_hz, 3)
-    (1345, 2048, 120, 5.859)
+    (1009, 1024, 120, 11.719)
     """
     half = int(round(3.5 * sigma_s * fs))
     n_window = 2 * half + 1
     n_fft = 1 << int(math.ceil(math.log2(n_window)))
-    hop = max(1, int(round(hop_s * fs)))
+    if hop is None:
+        hop = max(1, int(round(0.01 * fs)))
     bin_hz = fs / n_fft
     k_lo = max(2, int(math.floor(f_min_hz / bin_hz)))
     k_hi = min(n_fft // 2 - 2, int(math.ceil(f_max_hz / bin_hz)))
-    return FrameGeometry(float(fs), float(sigma_s), n_window, n_fft, hop, k_lo, k_hi, float(delay_s))
+    return FrameGeometry(float(fs), float(sigma_s), n_window, n_fft, int(hop), k_lo, k_hi,
+                         0, half / fs)
 
 
 def gaussian_window(geometry: FrameGeometry) -> np.ndarray:
@@ -345,6 +348,13 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
         left = p_db[rows, cols - 1] > p_db[rows, cols]
         right = p_db[rows, cols + 1] > p_db[rows, cols]
         cols = np.clip(cols - left + (right & ~left), 1, last)
+    # Two whitened maxima may climb to the same raw one: keep it once.
+    uniq = np.r_[True, (np.diff(rows) != 0) | (np.diff(cols) != 0)]
+    if not uniq.all():
+        key = rows.astype(np.int64) * p_db.shape[1] + cols
+        _, first = np.unique(key, return_index=True)
+        first.sort()
+        rows, cols, heights = rows[first], cols[first], heights[first]
     delta, _ = interpolate_peaks(p_db, rows, cols)
     freq = (geometry.k_lo - 1 + cols + delta) * geometry.bin_hz
     return Peaks(rows + first_frame, freq, heights.astype(float), first_frame, n)
@@ -401,19 +411,19 @@ class FrameAnalyser:
         if y.size:
             self._buf = np.concatenate([self._buf, y.astype(np.float32)])
         g = self.g
-        avail = self._buf_start + self._buf.size
+        avail = self._buf_start + self._buf.size - g.start
         n_frames = 0
         if avail >= g.n_window:
             n_frames = (avail - g.n_window) // g.hop + 1 - self._next_frame
         if n_frames > 0:
-            start = self._next_frame * g.hop - self._buf_start
+            start = g.start + self._next_frame * g.hop - self._buf_start
             stop = start + (n_frames - 1) * g.hop + g.n_window
             seg = self._buf[start:stop]
             frames = np.lib.stride_tricks.sliding_window_view(seg, g.n_window)[:: g.hop]
             self._add_rows(power_spectra_db(frames, self.window, g))
             self._next_frame += n_frames
             self.last_frame = self._next_frame - 1
-            keep_from = self._next_frame * g.hop - self._buf_start
+            keep_from = g.start + self._next_frame * g.hop - self._buf_start
             self._buf = self._buf[keep_from:].copy()
             self._buf_start += keep_from
         return self._emit(final=False)
@@ -468,3 +478,131 @@ class FrameAnalyser:
             for k in [k for k in self._medians if k < self._done - self.past]:
                 del self._medians[k]
         return out
+
+
+@dataclass(frozen=True)
+class Timebase:
+    """Frame ``p`` of every band is centred at ``t_first + p * hop_s`` seconds."""
+
+    hop_s: float
+    t_first: float
+
+    def frame_time(self, p):
+        """Centre time of frame ``p``, seconds from the first input sample."""
+        return self.t_first + np.asarray(p) * self.hop_s
+
+
+class FrontEnd:
+    """Two analysis bands on one frame grid: long windows low, short high.
+
+    The sweep of a passing tone near closest approach is about
+    ``f0 v^2 / (c d)`` Hz/s, proportional to its frequency, while engine
+    harmonics crowd together at low frequencies. So tones below
+    ``split_hz`` are analysed with a long window (s.d. 36 ms, resolving
+    harmonics 25 Hz apart) at about 2 kHz, and tones above it with a short
+    one (s.d. 12 ms) at 10-16 kHz. Both bands share the hop and the frame
+    centres exactly, so their peaks merge frame by frame.
+
+    Parameters
+    ----------
+    sample_rate : int
+    f_min_hz, f_max_hz : float
+    threshold_db : float
+
+    Attributes
+    ----------
+    timebase : Timebase
+    split_hz : float
+    bands : list of (Decimator, FrameAnalyser)
+    """
+
+    SIGMA_LOW_S = 0.036
+    SIGMA_HIGH_S = 0.012
+    LOW_RATE_HZ = 2000.0
+
+    def __init__(self, sample_rate: int, f_min_hz: float, f_max_hz: float, threshold_db: float):
+        q = decimation_factor(sample_rate, f_max_hz)
+        fs_high = sample_rate / q
+        hop = max(1, int(round(0.01 * fs_high)))
+        # Second decimation factor: a divisor of the hop, near fs_high / 2 kHz.
+        target = fs_high / self.LOW_RATE_HZ
+        r = min((d for d in range(1, hop + 1) if hop % d == 0), key=lambda d: (abs(d - target), d))
+        fs_low = fs_high / r
+        split = min(700.0, fs_low / 2.6, f_max_hz)
+        self.split_hz = split if r > 1 and split > f_min_hz else f_min_hz
+        dec_high = Decimator(sample_rate, q, f_max_hz, k_multiple=r)
+        specs = []
+        if self.split_hz > f_min_hz:
+            dec_low = Decimator(int(round(fs_high)), r, self.split_hz) if r > 1 else None
+            g = make_geometry(fs_low, f_min_hz, self.split_hz, self.SIGMA_LOW_S, hop // r)
+            delay = dec_high.delay_out // r + (dec_low.delay_out if dec_low else 0)
+            specs.append(("low", dec_low, g, delay))
+        if f_max_hz > self.split_hz:
+            g = make_geometry(fs_high, self.split_hz, f_max_hz, self.SIGMA_HIGH_S, hop)
+            specs.append(("high", None, g, dec_high.delay_out))
+        # Frame p of each band is centred at (p + m) hops after the first
+        # input sample, once its decimation delay is taken off.
+        m = max(math.ceil(((g.n_window - 1) / 2 - delay) / g.hop) for _, _, g, delay in specs)
+        m = max(m, 0)
+        self.decimator = dec_high
+        self.bands = []
+        for name, dec, g, delay in specs:
+            start = m * g.hop + delay - (g.n_window - 1) // 2
+            g = FrameGeometry(g.fs, g.sigma_s, g.n_window, g.n_fft, g.hop, g.k_lo, g.k_hi, start,
+                              m * g.hop / g.fs)
+            self.bands.append((name, dec, FrameAnalyser(g, threshold_db)))
+        self.timebase = Timebase(hop / fs_high, m * hop / fs_high)
+        self._queues = [[] for _ in self.bands]
+
+    @property
+    def geometries(self):
+        return [fa.g for _, _, fa in self.bands]
+
+    def bin_hz_at(self, f):
+        """Bin spacing of the band that analyses frequency ``f``."""
+        g = self.geometries
+        return g[0].bin_hz if (len(g) == 1 or f < self.split_hz) else g[1].bin_hz
+
+    def sigma_at(self, f):
+        """Window s.d. (s) of the band that analyses each frequency in ``f``."""
+        g = self.geometries
+        if len(g) == 1:
+            return np.full(np.shape(f), g[0].sigma_s)
+        return np.where(np.asarray(f) < self.split_hz, g[0].sigma_s, g[1].sigma_s)
+
+    def push(self, x: np.ndarray) -> list:
+        """Input samples in; merged :class:`Peaks`, one per completed chunk."""
+        return self._run(self.decimator.push(x), final=False)
+
+    def finish(self) -> list:
+        """End of stream: the peaks of every remaining frame."""
+        return self._run(self.decimator.flush(), final=True)
+
+    def _run(self, y: np.ndarray, final: bool) -> list:
+        for i, (_, dec, fa) in enumerate(self.bands):
+            z = y if dec is None else (np.concatenate([dec.push(y), dec.flush()]) if final else dec.push(y))
+            self._queues[i] += fa.push(z)
+            if final:
+                self._queues[i] += fa.finish()
+        out = []
+        while all(self._queues):
+            parts = [q.pop(0) for q in self._queues]
+            out.append(merge_peaks(parts))
+        if final:
+            rest = [p for q in self._queues for p in q]
+            if rest:
+                out.append(merge_peaks(rest))
+            self._queues = [[] for _ in self.bands]
+        return out
+
+
+def merge_peaks(parts) -> Peaks:
+    """Peaks of several bands for the same frames, in frame order."""
+    if len(parts) == 1:
+        return parts[0]
+    frame = np.concatenate([p.frame for p in parts])
+    order = np.argsort(frame, kind="stable")
+    first = min(p.first_frame for p in parts)
+    last = max(p.first_frame + p.n_frames for p in parts)
+    return Peaks(frame[order], np.concatenate([p.freq_hz for p in parts])[order],
+                 np.concatenate([p.snr_db for p in parts])[order], first, last - first)

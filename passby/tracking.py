@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from passby.spectral import FrameGeometry, Peaks
+from passby.spectral import Peaks, Timebase
 
 
 @dataclass(frozen=True)
@@ -81,25 +81,28 @@ class Tracker:
 
     Each open track predicts its next frequency from its last frequency and
     slope. A peak continues the track whose prediction is nearest, within a
-    tolerance of ``max(2 bins, rel_tol * f)`` that widens with the gap and,
-    downwards only, with the track's fall rate: a passing source's pitch
+    tolerance of ``max(2 bins, rel_tol * f)`` that widens a little with the
+    gap (to twice at most) and, downwards only, with the track's fall rate: a passing source's pitch
     only falls, and at a close pass it falls fast. A track not continued
     for ``max_gap_s`` ends; tracks shorter than ``min_track_s`` are dropped.
 
     Parameters
     ----------
-    geometry : FrameGeometry
+    timebase : Timebase
+    bin_hz_at : callable
+        Bin spacing (Hz) of the analysis at a frequency.
     min_track_s, max_gap_s, max_track_s : float
         A track longer than ``max_track_s`` (a steady line) is cut there.
     rel_tol : float
     """
 
-    def __init__(self, geometry: FrameGeometry, min_track_s: float = 0.8, max_gap_s: float = 0.3,
-                 max_track_s: float = 120.0, rel_tol: float = 0.01):
-        self.g = geometry
-        self.min_frames = max(3, int(round(min_track_s / geometry.hop_s)))
-        self.max_gap = max(1, int(round(max_gap_s / geometry.hop_s)))
-        self.max_frames = int(round(max_track_s / geometry.hop_s))
+    def __init__(self, timebase: Timebase, bin_hz_at, min_track_s: float = 0.8,
+                 max_gap_s: float = 0.3, max_track_s: float = 120.0, rel_tol: float = 0.01):
+        self.bin_hz_at = bin_hz_at
+        self.min_frames = max(3, int(round(min_track_s / timebase.hop_s)))
+        self.max_gap = max(1, int(round(max_gap_s / timebase.hop_s)))
+        self.max_frames = int(round(max_track_s / timebase.hop_s))
+        self.max_overlap = max(1, int(round(0.1 / timebase.hop_s)))
         self.rel_tol = float(rel_tol)
         self.open: list[_Open] = []
         self.frame = -1   # last frame processed
@@ -146,7 +149,8 @@ class Tracker:
             if succ is None:
                 self._close(t, done)
             else:   # the same tone after a jump or a dropout: one track
-                succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame, t.freq, t.snr
+                n = int(np.searchsorted(t.frame, succ.frame[0]))
+                succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame[:n], t.freq[:n], t.snr[:n]
         self.open = keep
 
     def _successor(self, t: _Open, candidates: list):
@@ -154,16 +158,17 @@ class Tracker:
 
         At a close, fast pass the pitch falls faster than a frame can
         follow, and an interference null can hide a tone for a moment: the
-        piece after the break continues the piece before it.
+        piece after the break continues the piece before it. The pieces may
+        overlap by up to 0.1 s (the earlier one's last frames are dropped).
         """
         best, best_key = None, None
         end, f_end = t.frame[-1], t.freq[-1]
         for o in candidates:
             s = o.frame[0]
-            if not (end < s <= end + self.max_gap):
+            if not (end - self.max_overlap < s <= end + self.max_gap) or o.frame[-1] <= end:
                 continue
             pred = max(t.predict(s), 0.5 * f_end)
-            tol = max(2.0 * self.g.bin_hz, 0.05 * f_end)
+            tol = max(2.0 * self.bin_hz_at(f_end), 0.05 * f_end)
             if abs(o.freq[0] - pred) <= tol and o.freq[0] <= f_end * 1.003:
                 key = (s - end, abs(o.freq[0] - pred))
                 if best_key is None or key < best_key:
@@ -171,13 +176,12 @@ class Tracker:
         return best
 
     def _assign(self, frame: int, freqs: list, snrs: list):
-        bin2 = 2.0 * self.g.bin_hz
         pairs = []
         for i, t in enumerate(self.open):
             gap = frame - t.frame[-1]
             pred = t.predict(frame)
-            tol = max(bin2, self.rel_tol * pred) * (1.0 + 0.5 * (gap - 1))
-            fall = max(0.0, -t.slope) * gap
+            tol = max(2.0 * self.bin_hz_at(pred), self.rel_tol * pred) * min(1.0 + 0.1 * (gap - 1), 2.0)
+            fall = max(0.0, -t.slope) * min(gap, 3)
             lo, hi = pred - tol - 2.0 * fall, pred + tol
             for j, fj in enumerate(freqs):
                 if lo <= fj <= hi:
@@ -201,11 +205,13 @@ def log_ratio_stability(a: Track, b: Track, min_overlap: int):
 
     Returns
     -------
-    (median_ratio, spread, sweep) or None
-        ``median_ratio`` is the median of ``ln f_a - ln f_b``, ``spread``
-        its robust standard deviation (1.4826 MAD) and ``sweep`` the range of
-        ``ln f_a`` over the common frames. None when they share fewer than
-        ``min_overlap`` frames.
+    (median_ratio, spread, noise, sweep) or None
+        ``median_ratio`` is the median of ``d = ln f_a - ln f_b``, ``spread``
+        the robust standard deviation (1.4826 MAD) of ``d``, ``noise`` the
+        spread expected of ``d`` from the tracks' own frame-to-frame scatter
+        (robust s.d. of first differences over sqrt 2, summed in quadrature),
+        and ``sweep`` the 10-90 % range of ``ln f_a``. None when they share
+        fewer than ``min_overlap`` frames.
     """
     common, ia, ib = np.intersect1d(a.frame, b.frame, assume_unique=True, return_indices=True)
     if common.size < min_overlap:
@@ -213,26 +219,34 @@ def log_ratio_stability(a: Track, b: Track, min_overlap: int):
     la, lb = np.log(a.freq_hz[ia]), np.log(b.freq_hz[ib])
     d = la - lb
     med = float(np.median(d))
-    spread = 1.4826 * float(np.median(np.abs(d - med)))
+    spread = _robust_sd(d - med)
+    noise = math.hypot(_robust_sd(np.diff(la)), _robust_sd(np.diff(lb))) / math.sqrt(2.0)
     lo, hi = np.percentile(la, [10, 90])
-    return med, spread, float(hi - lo)
+    return med, spread, noise, float(hi - lo)
 
 
-def same_source(a: Track, b: Track, min_overlap: int, max_spread: float = 0.002,
+def _robust_sd(x: np.ndarray) -> float:
+    """1.4826 times the median absolute deviation (normal consistency)."""
+    return 1.4826 * float(np.median(np.abs(x - np.median(x)))) if x.size else 0.0
+
+
+def same_source(a: Track, b: Track, min_overlap: int, max_spread: float = 0.003,
                 min_sweep: float = 0.004) -> bool:
     """Whether two tracks are tones of one source (parallel in log-frequency).
 
-    They must share ``min_overlap`` frames, their log-frequency difference
-    must stay within ``max_spread`` (robust s.d.) while the tracks sweep by
-    at least ``min_sweep`` in log-frequency (two unrelated steady lines are
-    parallel too, so only a shared sweep is evidence), and they must be
-    different tones (ratio at least 2 %).
+    They must share ``min_overlap`` frames; the difference of their
+    log-frequencies must stay constant within ``max_spread`` or four times
+    the scatter the tracks themselves show, whichever is larger; the tracks
+    must sweep together by ``min_sweep`` and by five times that tolerance
+    (two unrelated steady lines are parallel too, so only a shared sweep
+    is evidence); and they must be different tones (ratio at least 2 %).
     """
     r = log_ratio_stability(a, b, min_overlap)
     if r is None:
         return False
-    med, spread, sweep = r
-    return abs(med) > 0.02 and spread < max_spread and sweep > min_sweep
+    med, spread, noise, sweep = r
+    tol = max(max_spread, 4.0 * noise)
+    return abs(med) > 0.02 and spread < tol and sweep > max(min_sweep, 5.0 * tol)
 
 
 class SourceGrouper:
@@ -244,17 +258,16 @@ class SourceGrouper:
 
     Parameters
     ----------
-    geometry : FrameGeometry
+    timebase : Timebase
     settle_s : float
     max_wait_s : float
         A track is released at the latest this long after it ended.
     """
 
-    def __init__(self, geometry: FrameGeometry, settle_s: float = 1.0, max_wait_s: float = 90.0):
-        self.g = geometry
-        self.settle = int(round(settle_s / geometry.hop_s))
-        self.max_wait = int(round(max_wait_s / geometry.hop_s))
-        self.min_overlap = max(5, int(round(0.4 / geometry.hop_s)))
+    def __init__(self, timebase: Timebase, settle_s: float = 1.0, max_wait_s: float = 90.0):
+        self.settle = int(round(settle_s / timebase.hop_s))
+        self.max_wait = int(round(max_wait_s / timebase.hop_s))
+        self.min_overlap = max(5, int(round(0.4 / timebase.hop_s)))
         self.pool: list[Track] = []
 
     def push(self, ended: list, open_tracks: list, frame: int, final: bool = False) -> list:

@@ -50,7 +50,7 @@ class AnalysisSettings:
     f_min_hz: float = 60.0
     f_max_hz: float = 4500.0
     threshold_db: float = 12.0
-    min_track_s: float = 0.8
+    min_track_s: float = 0.3
     level: bool = False
     level_offset_db: float | None = None
 

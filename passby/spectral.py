@@ -344,10 +344,15 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
     # The whitened maximum can sit a bin off the raw one (the background is
     # not flat): climb to the raw spectrum's own maximum before interpolating.
     last = p_db.shape[1] - 2
-    for _ in range(2):
+    for _ in range(4):
         left = p_db[rows, cols - 1] > p_db[rows, cols]
         right = p_db[rows, cols + 1] > p_db[rows, cols]
+        if not (left | right).any():
+            break
         cols = np.clip(cols - left + (right & ~left), 1, last)
+    # A whitened maximum on the flank of a raw peak is no peak of its own.
+    top = (p_db[rows, cols] >= p_db[rows, cols - 1]) & (p_db[rows, cols] >= p_db[rows, cols + 1])
+    rows, cols, heights = rows[top], cols[top], heights[top]
     # Two whitened maxima may climb to the same raw one: keep it once.
     uniq = np.r_[True, (np.diff(rows) != 0) | (np.diff(cols) != 0)]
     if not uniq.all():

@@ -305,11 +305,30 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
         std = np.sqrt(np.maximum(np.diag(cov), 0.0))
     except np.linalg.LinAlgError:
         std = np.full(p, np.inf)
+    merged = _merge_same_tones(data, theta[3:])
+    if merged is not None:
+        # Two pieces of one tone (before and after a dropout) are one tone.
+        return fit_pass(merged, c, wind_mps)
     v, d, t0 = map(float, theta[:3])
     f0s = tuple(float(x) for x in theta[3:])
     quality, reason = _grade(v, std[0], d, std[1], t0, data, c, resid_hz, f0s, lower, upper)
     return FitResult(v, float(std[0]), d, float(std[1]), t0, float(std[2]), f0s, resid_hz, n,
                      "curve", quality, reason, c)
+
+
+def _merge_same_tones(data: TrackData, f0s, rel: float = 0.002):
+    """The data with tones of nearly the same rest frequency made one, or None."""
+    order = np.argsort(f0s)
+    new = np.arange(data.n_tones)
+    for a, b in zip(order[:-1], order[1:]):
+        if f0s[b] - f0s[a] < rel * f0s[a]:
+            keep, drop = min(new[a], new[b]), max(new[a], new[b])
+            new[new == drop] = keep
+    if np.unique(new).size == data.n_tones:
+        return None
+    _, renumbered = np.unique(new, return_inverse=True)
+    tone = renumbered[data.tone]
+    return TrackData(data.t, data.f, data.snr_db, tone, int(renumbered.max()) + 1, data.sigma_p)
 
 
 def _grade(v, v_std, d, d_std, t0, data, c, resid_hz, f0s, lower, upper):

@@ -87,7 +87,7 @@ def demos():
     hum = (Interferer(100.0, 0.02, wobble_rms=0.0002), Interferer(150.0, 0.008, wobble_rms=0.0002))
     out.append(Demo("hollin_lane_car_86kmh_hum.wav", HOLLIN,
                     "one car beside a substation: steady 100 Hz and 150 Hz hum",
-                    Scene((fast,), 24.0, 16000, temperature_c=15.0, mic_height_m=1.2,
+                    Scene((fast,), 24.0, 16000, temperature_c=8.0, mic_height_m=1.2,
                           ground_reflection=0.7, noise="road", snr_db=9.0, interferers=hum,
                           seed=103),
                     ("car",), 0.5))
@@ -98,7 +98,7 @@ def demos():
                     wander_rms=0.001, tyre_noise=1.2, tyre_cutoff_hz=1500.0)
     out.append(Demo("marl_vale_horn_95kmh.wav", MARL,
                     "train sounding a three-tone horn through the crossing",
-                    Scene((horn3,), 28.0, 22050, temperature_c=15.0, mic_height_m=1.5,
+                    Scene((horn3,), 28.0, 22050, temperature_c=8.0, mic_height_m=1.5,
                           ground_reflection=0.7, noise="road", snr_db=10.0, seed=104),
                     ("train",), 0.5))
 

@@ -91,7 +91,7 @@ class FitResult:
     c_mps: float
 
 
-def windowed_factor(t, v, d, t0, c, sigma_p):
+def windowed_factor(t, v, d, t0, c, sigma_p, wind_mps=0.0):
     """Doppler factor averaged over a Gaussian power window of s.d. ``sigma_p``.
 
     ``sigma_p`` may be a scalar or an array like ``t``.
@@ -113,7 +113,7 @@ def windowed_factor(t, v, d, t0, c, sigma_p):
     t = np.asarray(t, dtype=float)
     acc = np.zeros_like(t)
     for node, weight in zip(_GH_NODES, _GH_WEIGHTS):
-        acc += weight * doppler_factor(t + node * sigma_p, v, d, t0, c)
+        acc += weight * doppler_factor(t + node * sigma_p, v, d, t0, c, wind_mps)
     return acc
 
 
@@ -186,10 +186,10 @@ def error_inflation(res: np.ndarray, t: np.ndarray, max_lag: int = 300) -> float
     return max(1.0, tau * float(np.dot(sums, sums)) / denom)
 
 
-def _residuals(theta, data: TrackData, sw, c):
+def _residuals(theta, data: TrackData, sw, c, wind_mps=0.0):
     v, d, t0 = theta[0], theta[1], theta[2]
     f0 = theta[3:][data.tone]
-    model = f0 * windowed_factor(data.t, v, d, t0, c, data.sigma_p)
+    model = f0 * windowed_factor(data.t, v, d, t0, c, data.sigma_p, wind_mps)
     return (data.f - model) * sw
 
 
@@ -245,7 +245,7 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     c : float
         Speed of sound, m/s.
     wind_mps : float
-        Wind along the direction of travel (used by the starting guess).
+        Wind component along the direction of travel, m/s.
 
     Returns
     -------
@@ -279,7 +279,7 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
         x0 = np.clip(x0, lower + 1e-9, upper - 1e-9)
         try:
             r = scipy.optimize.least_squares(_residuals, x0, bounds=(lower, upper), loss="soft_l1",
-                                             f_scale=2.0, args=(sub, sw_sub, c),
+                                             f_scale=2.0, args=(sub, sw_sub, c, wind_mps),
                                              x_scale="jac", max_nfev=60)
         except (ValueError, np.linalg.LinAlgError):
             continue
@@ -288,13 +288,13 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     if best is None:
         return _rejected("fit did not converge", data, c, tones)
     # Refine on all points with a robust scale from the first fit.
-    res0 = _residuals(best.x, data, sw, c)
+    res0 = _residuals(best.x, data, sw, c, wind_mps)
     scale = max(1.4826 * float(np.median(np.abs(res0))), 1e-3)
     r = scipy.optimize.least_squares(_residuals, best.x, bounds=(lower, upper), loss="soft_l1",
-                                     f_scale=2.0 * scale, args=(data, sw, c),
+                                     f_scale=2.0 * scale, args=(data, sw, c, wind_mps),
                                      x_scale="jac", max_nfev=200)
     theta = r.x
-    res = _residuals(theta, data, sw, c)
+    res = _residuals(theta, data, sw, c, wind_mps)
     s = 1.4826 * float(np.median(np.abs(res)))
     raw = res / sw
     resid_hz = 1.4826 * float(np.median(np.abs(raw)))

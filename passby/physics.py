@@ -298,12 +298,19 @@ def emission_offset(t_rel, speed_mps, closest_m, c):
     return (c2 * T - root) / (c2 - v2)
 
 
-def doppler_factor(t, speed_mps, closest_m, pass_time_s, c):
+def doppler_factor(t, speed_mps, closest_m, pass_time_s, c, wind_mps=0.0):
     """Ratio of heard to emitted frequency of a passing source, ``f(t)/f0``.
 
     ``f(t) / f0 = 1 / (1 + v^2 u / (c r))`` with ``u`` from
     :func:`emission_offset` and ``r = sqrt(d^2 + v^2 u^2)``: the component of
     the source velocity toward the microphone at emission is ``-v^2 u / r``.
+
+    With a wind ``w`` along the direction of travel, in the frame of the
+    moving air the source moves at ``v - w`` and the microphone at ``-w``,
+    which gives ``f / f0 = 1 / (1 - v cos(theta) / (c + w cos(theta)))`` with
+    ``cos(theta) = -v u / r`` the direction of the sound relative to the
+    travel; exact on both plateaus (see :func:`plateau_solution`), first
+    order in ``w / c`` near the pass (the emission time ignores the wind).
 
     References
     ----------
@@ -318,7 +325,10 @@ def doppler_factor(t, speed_mps, closest_m, pass_time_s, c):
     u = emission_offset(np.asarray(t, dtype=float) - pass_time_s, speed_mps, closest_m, c)
     v2 = speed_mps * speed_mps
     r = np.sqrt(closest_m * closest_m + v2 * u * u)
-    return 1.0 / (1.0 + v2 * u / (c * r))
+    if wind_mps == 0.0:
+        return 1.0 / (1.0 + v2 * u / (c * r))
+    cos_theta = -speed_mps * u / np.maximum(r, 1e-12)
+    return 1.0 / (1.0 - speed_mps * cos_theta / (c + wind_mps * cos_theta))
 
 
 def received_frequency(t, f0_hz, speed_mps, closest_m, pass_time_s, c_mps):

@@ -164,7 +164,7 @@ class Pipeline:
             return False
         sigma_p = self.front.sigma_at(track.freq_hz) / math.sqrt(2.0)
         factor = windowed_factor(t, ev.speed_mps, ev.closest_approach_m, ev.pass_time_s,
-                                 ev.speed_of_sound_mps, sigma_p)
+                                 ev.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
         rest = track.freq_hz / factor
         f0 = float(np.median(rest))
         spread = 1.4826 * float(np.median(np.abs(rest - f0)))

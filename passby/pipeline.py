@@ -66,7 +66,6 @@ class Pipeline:
     def __init__(self, sample_rate: int, settings: AnalysisSettings | None = None):
         self.sample_rate = int(sample_rate)
         self.settings = s = settings or AnalysisSettings()
-        self.c = speed_of_sound(s.temperature_c, s.humidity_pct, s.pressure_pa)
         self.front = FrontEnd(self.sample_rate, s.f_min_hz, s.f_max_hz, s.threshold_db)
         self.timebase = self.front.timebase
         self.tracker = Tracker(self.timebase, self.front.bin_hz_at, min_track_s=s.min_track_s)
@@ -83,6 +82,17 @@ class Pipeline:
             self._level_count = 0
         #: The tracks behind each event, for figures (kept for the last events).
         self.tracks_of = {}
+
+    @property
+    def c(self) -> float:
+        """Speed of sound of the current settings, m/s.
+
+        The station may hand over a new air temperature between blocks by
+        replacing :attr:`settings` (only its air fields may change while
+        running); the next event fitted uses it.
+        """
+        s = self.settings
+        return speed_of_sound(s.temperature_c, s.humidity_pct, s.pressure_pa)
 
     # -- input ----------------------------------------------------------
     def push(self, block: np.ndarray) -> list:
@@ -167,7 +177,9 @@ class Pipeline:
                                  ev.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
         rest = track.freq_hz / factor
         f0 = float(np.median(rest))
-        spread = 1.4826 * float(np.median(np.abs(rest - f0)))
+        # Three quarters of the track, not just half of it: a track that sweeps
+        # through a pass of its own is not explained by a flat part of another.
+        spread = float(np.percentile(np.abs(rest - f0), 75))
         return spread < max(0.004 * f0, 1.5 * self.front.bin_hz_at(f0))
 
     def _event(self, tracks):
@@ -247,7 +259,8 @@ def _same_vehicle(a: PassEvent, b: PassEvent) -> bool:
     """Two events that are one vehicle seen twice (a harmonic, a broken track).
 
     They pass within ``SAME_VEHICLE_S`` of each other and either agree in
-    speed within ``SAME_VEHICLE_REL`` or share a tone within 10 %.
+    speed within ``SAME_VEHICLE_REL``, or one of them was rejected, or they
+    share a tone within 10 %.
     """
     if not (math.isfinite(a.pass_time_s) and math.isfinite(b.pass_time_s)):
         return False
@@ -255,5 +268,7 @@ def _same_vehicle(a: PassEvent, b: PassEvent) -> bool:
         return False
     if abs(a.speed_mps - b.speed_mps) < SAME_VEHICLE_REL * max(a.speed_mps, b.speed_mps):
         return True
+    if "rejected" in (a.quality, b.quality):
+        return True     # a fragment failing its fit beside a vehicle measured at that moment
     return any(abs(x - y) < 0.1 * max(x, y) for x in a.tones_hz for y in b.tones_hz
                if math.isfinite(x) and math.isfinite(y))

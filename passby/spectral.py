@@ -591,14 +591,23 @@ class FrontEnd:
                 self._queues[i] += fa.finish()
         out = []
         while all(self._queues):
-            parts = [q.pop(0) for q in self._queues]
+            parts = [self._own(i, q.pop(0)) for i, q in enumerate(self._queues)]
             out.append(merge_peaks(parts))
         if final:
-            rest = [p for q in self._queues for p in q]
+            rest = [self._own(i, p) for i, q in enumerate(self._queues) for p in q]
             if rest:
                 out.append(merge_peaks(rest))
             self._queues = [[] for _ in self.bands]
         return out
+
+    def _own(self, i: int, peaks: Peaks) -> Peaks:
+        """The peaks of band ``i`` on its own side of the split (the bins overlap)."""
+        if len(self.bands) == 1:
+            return peaks
+        keep = peaks.freq_hz < self.split_hz if self.bands[i][0] == "low" else peaks.freq_hz >= self.split_hz
+        if keep.all():
+            return peaks
+        return Peaks(peaks.frame[keep], peaks.freq_hz[keep], peaks.snr_db[keep], peaks.first_frame, peaks.n_frames)
 
 
 def merge_peaks(parts) -> Peaks:

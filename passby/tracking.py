@@ -168,9 +168,16 @@ class Tracker:
             s = o.frame[0]
             if not (end - self.max_overlap < s <= end + self.max_gap) or o.frame[-1] <= end:
                 continue
-            pred = max(t.predict(s), 0.5 * f_end)
-            tol = max(2.0 * self.bin_hz_at(f_end), 0.05 * f_end)
-            if abs(o.freq[0] - pred) <= tol and o.freq[0] <= f_end * 1.003:
+            # Compare with where t was just before o began (they may overlap).
+            n = int(np.searchsorted(t.frame, s))
+            if n < 2:
+                continue
+            ref_frame, ref_f = t.frame[n - 1], t.freq[n - 1]
+            k = min(3, n - 1)
+            slope = (ref_f - t.freq[n - 1 - k]) / (ref_frame - t.frame[n - 1 - k])
+            pred = max(ref_f + slope * (s - ref_frame), 0.5 * ref_f)
+            tol = max(2.0 * self.bin_hz_at(ref_f), 0.05 * ref_f)
+            if abs(o.freq[0] - pred) <= tol and o.freq[0] <= ref_f * 1.003:
                 key = (s - end, abs(o.freq[0] - pred))
                 if best_key is None or key < best_key:
                     best, best_key = o, key
@@ -262,8 +269,8 @@ class SourceGrouper:
     """Collects ended tracks and releases them grouped by source.
 
     A group is released once none of its tracks is open any more, no open
-    track that overlaps it in time could still join it, and ``settle_s``
-    has passed since its last frame.
+    track is parallel to one of its tracks (it would belong to the group),
+    and ``settle_s`` has passed since its last frame.
 
     Parameters
     ----------
@@ -309,9 +316,11 @@ class SourceGrouper:
             start = min(t.start for t in members)
             ready = final or frame - end >= self.max_wait
             if not ready and frame - end >= self.settle:
-                ready = not any(o.frame[0] <= end and len(o.frame) >= self.min_overlap
-                                and o.frame[-1] - o.frame[0] < self.max_wait
-                                and _open_overlaps(o, start) for o in open_tracks)
+                # The group's tracks have ended, so what they share with an
+                # open track is already known: wait only for a related one.
+                ready = not any(o.frame[0] <= end and o.frame[-1] >= start
+                                and any(same_source(o.freeze(), m, self.min_overlap) for m in members)
+                                for o in open_tracks)
             if ready:
                 out.append(sorted(members, key=lambda t: -t.strength))
             else:
@@ -319,10 +328,6 @@ class SourceGrouper:
         self.pool = keep
         out.sort(key=lambda m: min(t.start for t in m))
         return out
-
-
-def _open_overlaps(o, start: int) -> bool:
-    return o.frame[-1] >= start
 
 
 def fall_ratio(track: Track, part: float = 0.2) -> float:

@@ -25,7 +25,7 @@ Schema (every table and key optional)::
 
     [detection]
     threshold_db = 12
-    min_track_s = 0.8
+    min_track_s = 0.3
     f_min_hz = 60
     f_max_hz = 4500
 

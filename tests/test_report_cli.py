@@ -113,7 +113,9 @@ def test_report_csv_is_one_row(study_log, capsys):
     code, out, _ = run_cli(capsys, "report", path, "--station", "test-lane", "--csv")
     assert code == 0
     rows = list(csv.DictReader(io.StringIO(out)))
-    assert len(rows) == 1 and rows[0]["count"] == "60" and rows[0]["station"] == "test-lane"
+    assert [r["count"] for r in rows] == ["30", "0", "30"]
+    assert [r["rejected"] for r in rows] == ["3", "0", "0"]
+    assert rows[0]["station"] == "test-lane" and rows[1]["hour_utc"] == "2032-05-04T08:00:00.000Z"
 
 
 def test_report_limit_and_log_from_config(study_log, tmp_path, capsys):

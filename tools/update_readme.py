@@ -2,9 +2,10 @@
 
     python tools/update_readme.py
 
-Runs ``passby analyze recordings_demo --temperature 8`` and puts its output
-between ``<!-- demo:begin -->`` and ``<!-- demo:end -->``, so the README
-shows what the program prints, not what someone typed.
+Runs ``passby analyze recordings_demo --temperature 8`` and
+``passby report recordings_demo/hollin_lane_morning.sqlite --limit 50`` and
+puts their output between the ``demo`` and ``report`` markers, so the
+README shows what the program prints, not what someone typed.
 """
 
 import pathlib
@@ -22,11 +23,20 @@ def replace_between(text: str, name: str, body: str) -> str:
     return pattern.sub(lambda m: m.group(1) + body.rstrip("\n") + "\n" + m.group(3), text)
 
 
+def passby(*args) -> str:
+    return subprocess.run([sys.executable, "-m", "passby", *args], cwd=ROOT, capture_output=True,
+                          text=True, check=True).stdout
+
+
 def main() -> int:
-    out = subprocess.run([sys.executable, "-m", "passby", "analyze", "recordings_demo", "--temperature", "8"],
-                         cwd=ROOT, capture_output=True, text=True, check=True).stdout
     readme = ROOT / "README.md"
-    readme.write_text(replace_between(readme.read_text(), "demo", out))
+    text = readme.read_text()
+    demo = passby("analyze", "recordings_demo", "--temperature", "8")
+    text = replace_between(text, "demo", f"```\n{demo.rstrip()}\n```")
+    report = passby("report", "recordings_demo/hollin_lane_morning.sqlite", "--limit", "50")
+    cmd = "$ passby report recordings_demo/hollin_lane_morning.sqlite --limit 50"
+    text = replace_between(text, "report", f"```\n{cmd}\n{report.rstrip()}\n```")
+    readme.write_text(text)
     return 0
 
 

@@ -70,7 +70,7 @@ def add_parser(sub):
     out = p.add_mutually_exclusive_group()
     out.add_argument("--json", action="store_true", help="print JSON")
     out.add_argument("--csv", action="store_true",
-                     help="print CSV: one summary row (with --tones: one row per event)")
+                     help="print CSV: the counts per hour (with --tones: one row per event)")
     p.add_argument("--plot", metavar="OUT.png", help="also draw the study to a PNG (needs matplotlib)")
     p.add_argument("--tones", action="store_true",
                    help="also list each event's tones and LAFmax")
@@ -275,28 +275,10 @@ def _tone_text(rows, u, lab, bands):
 
 
 def format_csv(summary) -> str:
-    """One header line and one row: the summary in the report unit."""
-    u = summary["unit"]
-    p = summary[f"pace_{u}"] or {}
-    row = {
-        "station": summary.get("station") or "",
-        "since_utc": summary.get("since") or "",
-        "until_utc": summary.get("until") or "",
-        "first_utc": summary.get("first_utc") or "",
-        "last_utc": summary.get("last_utc") or "",
-        "count": summary["count"],
-        "rejected_count": summary["rejected_count"],
-    }
-    for name in ("mean", "std", "min", "max", "p15", "p50", "p85"):
-        row[f"{name}_{u}"] = summary[f"{name}_{u}"]
-    row[f"pace_low_{u}"] = p.get("low")
-    row[f"pace_high_{u}"] = p.get("high")
-    row["pace_share"] = summary["pace_share"]
-    row[f"posted_limit_{u}"] = summary[f"posted_limit_{u}"]
-    row["over_limit_share"] = summary["over_limit_share"]
-    row["min_sample_size"] = summary["min_sample_size"]
-    row["sample_adequate"] = summary["sample_adequate"]
-    return _csv([row])
+    """The counts per hour: one row per UTC hour, empty hours included."""
+    rows = [{"station": summary.get("station") or "", "hour_utc": h["hour_utc"],
+             "count": h["count"], "rejected": h["rejected"]} for h in summary["per_hour"]]
+    return _csv(rows, ["station", "hour_utc", "count", "rejected"])
 
 
 def format_tone_csv(rows, u) -> str:

@@ -25,10 +25,12 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.optimize
 import scipy.signal  # noqa: F401  (used by the doctests)
 
 from passby.physics import doppler_factor, plateau_solution
+
+#: Longest series of one tone that enters a fit (longer ones are thinned).
+MAX_POINTS_PER_TONE = 500
 
 # Probabilists' Gauss-Hermite rule, 3 points: exact for polynomials of
 # degree 5 against a normal weight (Abramowitz & Stegun 25.4.46).
@@ -111,10 +113,8 @@ def windowed_factor(t, v, d, t0, c, sigma_p, wind_mps=0.0):
     (True, 1.06188)
     """
     t = np.asarray(t, dtype=float)
-    acc = np.zeros_like(t)
-    for node, weight in zip(_GH_NODES, _GH_WEIGHTS):
-        acc += weight * doppler_factor(t + node * sigma_p, v, d, t0, c, wind_mps)
-    return acc
+    shifted = t[None, ...] + _GH_NODES.reshape((-1,) + (1,) * t.ndim) * np.asarray(sigma_p)
+    return np.tensordot(_GH_WEIGHTS, doppler_factor(shifted, v, d, t0, c, wind_mps), axes=1)
 
 
 def integrated_autocorrelation(x: np.ndarray, max_lag: int = 30) -> float:
@@ -186,6 +186,95 @@ def error_inflation(res: np.ndarray, t: np.ndarray, max_lag: int = 300) -> float
     return max(1.0, tau * float(np.dot(sums, sums)) / denom)
 
 
+@dataclass(frozen=True)
+class _Solution:
+    x: np.ndarray
+    cost: float
+    jac: np.ndarray
+    nit: int
+
+
+def _soft_l1_weights(r, f_scale):
+    """IRLS weights of the soft-L1 loss rho(z) = 2 (sqrt(1 + z) - 1), z = (r / f)^2."""
+    z = (r / f_scale) ** 2
+    return 1.0 / np.sqrt(1.0 + z), float(np.sum(2.0 * (np.sqrt(1.0 + z) - 1.0))) * f_scale ** 2 / 2.0
+
+
+def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=()):
+    """Bounded Levenberg-Marquardt with a soft-L1 loss by reweighting.
+
+    Minimises ``sum f^2 rho((r_i / f)^2) / 2`` with ``rho(z) = 2(sqrt(1+z)-1)``
+    (the soft-L1 loss of scipy.optimize.least_squares) by iteratively
+    reweighted Gauss-Newton steps with Marquardt's scaled damping; a step
+    leaving the bounds is projected onto them. The normal equations are
+    only p x p (p = 3 + tones), so no factorisation of the tall Jacobian is
+    needed: that keeps a fit to a few milliseconds on a small board.
+
+    Returns
+    -------
+    _Solution
+        ``x``, the robust ``cost``, ``jac`` (the Jacobian scaled by the
+        square root of the loss weights, as scipy's ``least_squares``
+        returns it) and the number of iterations.
+
+    References
+    ----------
+    D. W. Marquardt, "An algorithm for least-squares estimation of
+    nonlinear parameters", J. SIAM 11(2), 431-441 (1963); P. J. Holland and
+    R. E. Welsch, "Robust regression using iteratively reweighted
+    least-squares", Commun. Statist. A6(9), 813-827 (1977).
+    """
+    x = np.clip(np.asarray(x0, dtype=float), lower, upper)
+    p = x.size
+    r = fun(x, *args)
+    w, cost = _soft_l1_weights(r, f_scale)
+    lam = 1e-3
+    J = None
+    nit = 0
+    for nit in range(1, max_iter + 1):
+        J = _jacobian(fun, x, r, lower, upper, args)
+        Jw = J * np.sqrt(w)[:, None]
+        A = Jw.T @ Jw
+        g = Jw.T @ (r * np.sqrt(w))
+        diag = np.maximum(np.diag(A), 1e-12)
+        improved = False
+        for _ in range(10):
+            try:
+                step = -np.linalg.solve(A + lam * np.diag(diag), g)
+            except np.linalg.LinAlgError:
+                lam *= 10.0
+                continue
+            x_new = np.clip(x + step, lower, upper)
+            r_new = fun(x_new, *args)
+            w_new, cost_new = _soft_l1_weights(r_new, f_scale)
+            if np.isfinite(cost_new) and cost_new < cost:
+                done = cost - cost_new < 1e-6 * max(cost, 1e-30) or \
+                    np.all(np.abs(x_new - x) <= 1e-9 * np.maximum(np.abs(x), 1.0))
+                x, r, w, cost = x_new, r_new, w_new, cost_new
+                lam = max(lam / 3.0, 1e-9)
+                improved = True
+                break
+            lam *= 4.0
+        if not improved or done:
+            break
+    if J is None:
+        J = _jacobian(fun, x, r, lower, upper, args)
+    return _Solution(x, cost, J * np.sqrt(w)[:, None], nit)
+
+
+def _jacobian(fun, x, r, lower, upper, args):
+    """Forward differences, stepping inward at a bound."""
+    J = np.empty((r.size, x.size))
+    for j in range(x.size):
+        h = 1.5e-8 * max(abs(x[j]), 1e-2)
+        if x[j] + h > upper[j]:
+            h = -h
+        xh = x.copy()
+        xh[j] += h
+        J[:, j] = (fun(xh, *args) - r) / h
+    return J
+
+
 def _residuals(theta, data: TrackData, sw, c, wind_mps=0.0):
     v, d, t0 = theta[0], theta[1], theta[2]
     f0 = theta[3:][data.tone]
@@ -253,7 +342,8 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
 
     Notes
     -----
-    Weighted, robust (soft-L1) least squares [Huber]_ over
+    Weighted, robust (soft-L1) least squares [Huber]_ (by
+    :func:`robust_least_squares`) over
     ``(v, d, t0, f0_1 .. f0_K)``, bounded by physics (``0.3 m/s <= v <= 0.6 c``,
     ``0.3 m <= d <= 1000 m``), from six starts around the plateau estimate.
     The covariance ``s^2 (J^T J)^-1`` is inflated by the integrated
@@ -265,6 +355,8 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     tones = tuple([float("nan")] * data.n_tones)
     if n < max(20, 2 * p):
         return _rejected("track too short", data, c, tones)
+    data = _thinned(data, MAX_POINTS_PER_TONE)
+    n = data.t.size
     snr = np.minimum(10.0 ** (data.snr_db / 10.0), 1000.0)
     sw = np.sqrt(snr / snr.mean())
     starts, (fa, fr, v_pl, f0_pl) = _initial_guesses(data, c, wind_mps)
@@ -275,13 +367,20 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     thin = slice(None, None, max(1, n // 300))
     sub = data.take(thin)
     sw_sub = sw[thin]
+    # A few steps from every start, then the two best on to convergence.
+    trials = []
     for x0 in starts:
         x0 = np.clip(x0, lower + 1e-9, upper - 1e-9)
         try:
-            r = scipy.optimize.least_squares(_residuals, x0, bounds=(lower, upper), loss="soft_l1",
-                                             f_scale=2.0, args=(sub, sw_sub, c, wind_mps),
-                                             x_scale="jac", max_nfev=60)
-        except (ValueError, np.linalg.LinAlgError):
+            trials.append(robust_least_squares(_residuals, x0, lower, upper, 2.0, 5,
+                                               args=(sub, sw_sub, c, wind_mps)))
+        except (ValueError, np.linalg.LinAlgError, FloatingPointError):
+            continue
+    for r in sorted(trials, key=lambda r: r.cost)[:2]:
+        try:
+            r = robust_least_squares(_residuals, r.x, lower, upper, 2.0, 30,
+                                     args=(sub, sw_sub, c, wind_mps))
+        except (ValueError, np.linalg.LinAlgError, FloatingPointError):
             continue
         if best is None or r.cost < best.cost:
             best = r
@@ -290,9 +389,8 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     # Refine on all points with a robust scale from the first fit.
     res0 = _residuals(best.x, data, sw, c, wind_mps)
     scale = max(1.4826 * float(np.median(np.abs(res0))), 1e-3)
-    r = scipy.optimize.least_squares(_residuals, best.x, bounds=(lower, upper), loss="soft_l1",
-                                     f_scale=2.0 * scale, args=(data, sw, c, wind_mps),
-                                     x_scale="jac", max_nfev=200)
+    r = robust_least_squares(_residuals, best.x, lower, upper, 2.0 * scale, 40,
+                             args=(data, sw, c, wind_mps))
     theta = r.x
     res = _residuals(theta, data, sw, c, wind_mps)
     s = 1.4826 * float(np.median(np.abs(res)))
@@ -314,6 +412,23 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     quality, reason = _grade(v, std[0], d, std[1], t0, data, c, resid_hz, f0s, lower, upper)
     return FitResult(v, float(std[0]), d, float(std[1]), t0, float(std[2]), f0s, resid_hz, n,
                      "curve", quality, reason, c)
+
+
+def _thinned(data: TrackData, per_tone: int) -> TrackData:
+    """At most ``per_tone`` measurements of each tone, evenly spaced in time.
+
+    Neighbouring frames overlap, so every other frame of a long track adds
+    little; thinning bounds the cost of a fit whatever the track's length.
+    """
+    counts = np.bincount(data.tone, minlength=data.n_tones)
+    if counts.max() <= per_tone:
+        return data
+    keep = np.zeros(data.t.size, dtype=bool)
+    for k, nk in enumerate(counts):
+        idx = np.flatnonzero(data.tone == k)
+        step = max(1, int(math.ceil(nk / per_tone)))
+        keep[idx[np.argsort(data.t[idx], kind="stable")][::step]] = True
+    return data.take(keep)
 
 
 def _merge_same_tones(data: TrackData, f0s, rel: float = 0.002):

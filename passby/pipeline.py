@@ -35,6 +35,13 @@ log = logging.getLogger(__name__)
 MIN_FALL_RATIO = 1.004
 #: Two events closer than this in time and speed are one vehicle.
 SAME_VEHICLE_S, SAME_VEHICLE_REL = 1.0, 0.05
+#: A rejected event waits this long (stream seconds after its last frame)
+#: for a better source of the same vehicle before it is reported.
+HOLD_REJECTED_S = 20.0
+#: A rejected fit whose speed is more uncertain than this fraction of itself
+#: says nothing about a vehicle (a short fragment, a steady line's wobble):
+#: it is not reported at all.
+MAX_REJECTED_REL_STD = 0.3
 
 
 class Pipeline:
@@ -73,6 +80,7 @@ class Pipeline:
         self.samples_in = 0
         self._gaps = deque(maxlen=4096)      # (start_s, end_s, blocks)
         self._recent = deque(maxlen=16)      # events emitted, for de-duplication
+        self._held = []                      # rejected events not yet emitted
         self._level = None
         self._levels = deque()               # (time_s, LAF dB) for the last minutes
         if s.level:
@@ -124,7 +132,7 @@ class Pipeline:
             ended += self.tracker.push(pk)
         ended += self.tracker.finish()
         groups = self.grouper.push(ended, [], self.tracker.frame, final=True)
-        return events + self._events_from(groups)
+        return events + self._events_from(groups, final=True)
 
     # -- stages -----------------------------------------------------------
     def _advance(self, peaks) -> list:
@@ -134,7 +142,7 @@ class Pipeline:
             groups += self.grouper.push(ended, self.tracker.open, self.tracker.frame)
         return self._events_from(groups)
 
-    def _events_from(self, groups) -> list:
+    def _events_from(self, groups, final: bool = False) -> list:
         # Strongest source first: a weaker group that is only more tones (or
         # a fragment) of a vehicle already measured follows its fitted curve.
         groups = sorted(groups, key=lambda g: -sum(t.strength for t in g))
@@ -149,10 +157,18 @@ class Pipeline:
         found.sort(key=_merit)
         events = []
         for ev in found:
-            if not any(_same_vehicle(ev, old) for old in list(self._recent) + events):
-                events.append(ev)
-            else:
+            if any(_same_vehicle(ev, old) for old in list(self._recent) + events + self._held):
                 log.debug("second source of the vehicle at %.1f s dropped", ev.pass_time_s)
+                continue
+            if ev.quality == "rejected":
+                self._held.append(ev)     # until a better source of the same moment may come
+                continue
+            self._held = [h for h in self._held if not _same_vehicle(h, ev)]
+            events.append(ev)
+        now = self.timebase.frame_time(self.tracker.frame)
+        due = [h for h in self._held if final or now - h.end_s > HOLD_REJECTED_S]
+        self._held = [h for h in self._held if h not in due]
+        events += due
         self._recent.extend(events)
         events.sort(key=lambda e: e.pass_time_s if math.isfinite(e.pass_time_s) else e.start_s)
         return events
@@ -191,6 +207,11 @@ class Pipeline:
         data = track_data(tracks, self.timebase, self.front.sigma_at)
         fit = fit_pass(data, self.c, self.settings.wind_mps)
         start_s, end_s = float(data.t.min()), float(data.t.max())
+        if fit.quality == "rejected" and not (
+                math.isfinite(fit.speed_std_mps) and fit.speed_std_mps <= MAX_REJECTED_REL_STD * fit.speed_mps):
+            log.debug("tracks at %.0f Hz from %.1f s: no usable pass (%s)", main.freq_hz.mean(),
+                      start_s, fit.reason)
+            return None
         ev = PassEvent(
             pass_time_s=fit.pass_time_s,
             speed_mps=fit.speed_mps,

@@ -103,7 +103,6 @@ class Tracker:
         self.max_gap = max(1, int(round(max_gap_s / timebase.hop_s)))
         self.max_frames = int(round(max_track_s / timebase.hop_s))
         self.max_overlap = max(1, int(round(0.1 / timebase.hop_s)))
-        self.max_jump_frames = max(1, int(round(0.05 / timebase.hop_s)))
         self.rel_tol = float(rel_tol)
         self.open: list[_Open] = []
         self.frame = -1   # last frame processed
@@ -181,14 +180,6 @@ class Tracker:
                 key = (s - end, abs(o.freq[0] - pred))
                 if best_key is None or key < best_key:
                     best, best_key = o, key
-        if best is None:
-            # A pass closer and faster than a window can follow: the pitch
-            # jumps down between two frames. Taken only when unambiguous.
-            jumps = [o for o in candidates
-                     if abs(o.frame[0] - end) <= self.max_jump_frames and o.frame[-1] > end
-                     and 0.6 * f_end <= o.freq[0] <= 0.995 * f_end]
-            if len(jumps) == 1:
-                best = jumps[0]
         return best
 
     def _assign(self, frame: int, freqs: list, snrs: list):

@@ -391,6 +391,9 @@ class FrameAnalyser:
     ``future_chunks`` chunks. The numbers do not depend on block sizes.
     """
 
+    #: Chunks that share one background computation.
+    BG_EVERY = 4
+
     def __init__(self, geometry: FrameGeometry, threshold_db: float, chunk_frames: int = 50,
                  past_chunks: int = 120, future_chunks: int = 8, min_chunks: int = 60,
                  percentile: float = 10.0):
@@ -409,6 +412,7 @@ class FrameAnalyser:
         self._n_chunks = 0                           # chunks completed
         self._done = 0                               # chunks whose peaks were emitted
         self.last_frame = -1                         # last frame computed
+        self._bg, self._bg_key = None, None          # background of the current chunk group
 
     # -- framing -------------------------------------------------------
     def push(self, y: np.ndarray) -> list:
@@ -462,25 +466,35 @@ class FrameAnalyser:
         self._n_chunks += 1
 
     def _window_of(self, j: int, n_known: int):
-        lo = max(0, j - self.past)
-        hi = max(j + self.future, lo + self.min_chunks - 1)
+        """Chunks whose means make the background of chunk ``j``'s group.
+
+        The background is computed once for a group of ``BG_EVERY``
+        chunks (it changes slowly), from the window of the group's first
+        chunk, reaching ``future`` chunks past the group's last.
+        """
+        j0 = j - j % self.BG_EVERY
+        lo = max(0, j0 - self.past)
+        hi = max(j0 + self.BG_EVERY - 1 + self.future, lo + self.min_chunks - 1)
         return lo, min(hi, n_known - 1), hi
 
     def _emit(self, final: bool) -> list:
         out = []
         while self._done < self._n_chunks:
             j = self._done
-            lo, hi, want = self._window_of(j, self._n_chunks)
-            if not final and hi < want:
-                break
-            stack = np.stack([self._medians[k] for k in range(lo, hi + 1)], axis=1)
-            kth = int(round(self.percentile / 100.0 * (stack.shape[1] - 1)))
-            bg = np.partition(stack, kth, axis=1)[:, kth]
+            key = j // self.BG_EVERY
+            if self._bg_key != key:
+                lo, hi, want = self._window_of(j, self._n_chunks)
+                if not final and hi < want:
+                    break
+                stack = np.stack([self._medians[k] for k in range(lo, hi + 1)], axis=1)
+                kth = int(round(self.percentile / 100.0 * (stack.shape[1] - 1)))
+                self._bg = np.partition(stack, kth, axis=1)[:, kth]
+                self._bg_key = key
             first = j * self.chunk_frames
-            out.append(pick_peaks(self._chunks[j], bg, first, self.g, self.threshold_db))
+            out.append(pick_peaks(self._chunks[j], self._bg, first, self.g, self.threshold_db))
             self._done += 1
             del self._chunks[j]
-            for k in [k for k in self._medians if k < self._done - self.past]:
+            for k in [k for k in self._medians if k < self._done - self.past - self.BG_EVERY]:
                 del self._medians[k]
         return out
 
@@ -557,6 +571,8 @@ class FrontEnd:
                               m * g.hop / g.fs)
             self.bands.append((name, dec, FrameAnalyser(g, threshold_db)))
         self.timebase = Timebase(hop / fs_high, m * hop / fs_high)
+        bins = [fa.g.bin_hz for _, _, fa in self.bands]
+        self._bin_low, self._bin_high = bins[0], bins[-1]
         self._queues = [[] for _ in self.bands]
 
     @property
@@ -565,8 +581,7 @@ class FrontEnd:
 
     def bin_hz_at(self, f):
         """Bin spacing of the band that analyses frequency ``f``."""
-        g = self.geometries
-        return g[0].bin_hz if (len(g) == 1 or f < self.split_hz) else g[1].bin_hz
+        return self._bin_low if f < self.split_hz else self._bin_high
 
     def sigma_at(self, f):
         """Window s.d. (s) of the band that analyses each frequency in ``f``."""

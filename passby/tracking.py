@@ -184,17 +184,20 @@ class Tracker:
 
     def _assign(self, frame: int, freqs: list, snrs: list):
         pairs = []
+        rel_tol, bin_hz_at = self.rel_tol, self.bin_hz_at
         for i, t in enumerate(self.open):
-            gap = frame - t.frame[-1]
-            pred = t.predict(frame)
-            tol = max(2.0 * self.bin_hz_at(pred), self.rel_tol * pred) * min(1.0 + 0.1 * (gap - 1), 2.0)
-            fall = max(0.0, -t.slope) * min(gap, 3)
-            lo, hi = pred - tol - 2.0 * fall, pred + tol
+            last = t.frame[-1]
+            gap = frame - last
+            pred = t.freq[-1] + t.slope * gap
+            tol = max(2.0 * bin_hz_at(pred), rel_tol * pred) * min(1.0 + 0.1 * (gap - 1), 2.0)
+            lo = pred - tol - 2.0 * max(0.0, -t.slope) * min(gap, 3)
+            hi = pred + tol
             for j, fj in enumerate(freqs):
                 if lo <= fj <= hi:
                     pairs.append((abs(fj - pred) / tol, i, j))
-        used_t, used_p = set(), set()
+        used_p = set()
         if pairs:
+            used_t = set()
             pairs.sort()
             for _, i, j in pairs:
                 if i in used_t or j in used_p:

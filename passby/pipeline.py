@@ -33,6 +33,9 @@ log = logging.getLogger(__name__)
 #: Smallest early-to-late frequency ratio of a pass-by: 0.4 % (a source at
 #: about 2.5 km/h, or the part of a slow pass that was recorded).
 MIN_FALL_RATIO = 1.004
+#: A source heard for less than SHORT_SOURCE_S must fall by SHORT_FALL_RATIO:
+#: a pass seen that briefly is close and fast, so its pitch falls steeply.
+SHORT_SOURCE_S, SHORT_FALL_RATIO = 1.0, 1.02
 #: Two events closer than this in time and speed are one vehicle.
 SAME_VEHICLE_S, SAME_VEHICLE_REL = 1.0, 0.05
 #: A rejected event waits this long (stream seconds after its last frame)
@@ -200,7 +203,9 @@ class Pipeline:
 
     def _event(self, tracks):
         main = tracks[0]
-        if fall_ratio(main) < MIN_FALL_RATIO:
+        span_s = (max(t.end for t in tracks) - min(t.start for t in tracks)) * self.timebase.hop_s
+        needed = MIN_FALL_RATIO if span_s >= SHORT_SOURCE_S else SHORT_FALL_RATIO
+        if fall_ratio(main) < needed:
             log.debug("tracks at %.0f Hz from %.1f s: no Doppler fall, not a pass-by",
                       main.freq_hz.mean(), self.timebase.frame_time(main.start))
             return None

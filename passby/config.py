@@ -185,6 +185,18 @@ def _device(v):
     raise ValueError("must be a device index (integer) or part of a device name")
 
 
+def device_option(text: str):
+    """A ``--device`` value: an index when the text is a whole number, else part of a name.
+
+    Examples
+    --------
+    >>> device_option(" 2 "), device_option("USB")
+    (2, 'USB')
+    """
+    text = text.strip()
+    return int(text) if text.isdigit() else text
+
+
 def _unit(v):
     if v not in ("C", "mC"):
         raise ValueError('must be "C" (degrees) or "mC" (millidegrees)')

@@ -9,10 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from passby.config import device_option
 
-def _device(text):
-    text = text.strip()
-    return int(text) if text.isdigit() else text
 
 
 def add_parser(sub):
@@ -21,7 +19,7 @@ def add_parser(sub):
         description="Record a few seconds of the site's background (with no vehicle "
                     "passing) and judge whether the gain suits pass-by measurement.")
     p.add_argument("--config", metavar="TOML", help="station configuration ([audio] keys)")
-    p.add_argument("--device", metavar="D", type=_device,
+    p.add_argument("--device", metavar="D", type=device_option,
                    help="input device: index or part of its name (see 'passby devices')")
     p.add_argument("--rate", metavar="R", type=int, help="sampling rate, Hz")
     p.add_argument("--channel", metavar="N", type=int, help="input channel, from 1")

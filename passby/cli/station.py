@@ -8,13 +8,9 @@ from __future__ import annotations
 
 import signal
 
+from passby.config import device_option
 from passby.errors import ConfigError
 
-
-def _device(text):
-    """A device index when the text is a whole number, else part of a name."""
-    text = text.strip()
-    return int(text) if text.isdigit() else text
 
 
 def add_parser(sub):
@@ -29,7 +25,7 @@ def add_parser(sub):
     p.add_argument("--config", metavar="TOML", help="station configuration file")
     p.add_argument("--temperature", metavar="C", type=float,
                    help="air temperature, degrees C (overrides the file's [air] keys)")
-    p.add_argument("--device", metavar="D", type=_device,
+    p.add_argument("--device", metavar="D", type=device_option,
                    help="input device: index or part of its name (see 'passby devices')")
     p.add_argument("--rate", metavar="R", type=int, help="sampling rate, Hz")
     p.add_argument("--channel", metavar="N", type=int, help="input channel, from 1")

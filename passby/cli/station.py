@@ -12,7 +12,6 @@ from passby.config import device_option
 from passby.errors import ConfigError
 
 
-
 def add_parser(sub):
     p = sub.add_parser(
         "station",

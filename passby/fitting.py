@@ -462,7 +462,7 @@ def _grade(v, v_std, d, d_std, t0, data, c, resid_hz, f0s, lower, upper):
     if v_std > 2.5:
         return "rejected", f"speed too uncertain (+-{v_std * 3.6:.1f} km/h)"
     if d >= upper[1] * 0.99 or d <= lower[1] * 1.01:
-        return "fair", "closest distance at its bound"
+        return "rejected", f"closest distance at its bound ({d:.1f} m): the pass is not resolved"
     if v_std > 0.5:
         return "fair", f"speed uncertainty +-{v_std * 3.6:.1f} km/h"
     before = np.sum(data.t < t0 - margin)

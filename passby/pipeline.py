@@ -15,6 +15,7 @@ with the length of the stream.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 from collections import deque
@@ -38,9 +39,16 @@ MIN_FALL_RATIO = 1.004
 SHORT_SOURCE_S, SHORT_FALL_RATIO = 1.0, 1.02
 #: Two events closer than this in time and speed are one vehicle.
 SAME_VEHICLE_S, SAME_VEHICLE_REL = 1.0, 0.05
-#: A rejected event waits this long (stream seconds after its last frame)
-#: for a better source of the same vehicle before it is reported.
-HOLD_REJECTED_S = 20.0
+#: Two events whose passes are this close in time are one vehicle whatever
+#: their speeds (a mistracked tone of it); two vehicles passing the
+#: microphone within this time of each other are reported as one.
+SAME_MOMENT_S = 0.25
+#: An event waits this long (stream seconds after its last frame) for other
+#: sources of the same vehicle before it is reported; a rejected one longer.
+HOLD_S, HOLD_REJECTED_S = 6.0, 20.0
+#: Two sources of one vehicle whose speeds differ by more than this fraction
+#: disagree: the better one (more tones, more frames) is kept, graded fair.
+DISAGREE_REL = 0.08
 #: A rejected fit whose speed is more uncertain than this fraction of itself
 #: says nothing about a vehicle (a short fragment, a steady line's wobble):
 #: it is not reported at all.
@@ -156,22 +164,29 @@ class Pipeline:
             ev = self._event(tracks)
             if ev is not None:
                 found.append(ev)
-        # Best first, so that of two sources found for one vehicle the better stays.
-        found.sort(key=_merit)
-        events = []
-        for ev in found:
-            if any(_same_vehicle(ev, old) for old in list(self._recent) + events + self._held):
-                log.debug("second source of the vehicle at %.1f s dropped", ev.pass_time_s)
+        # Every event waits a little in ``_held`` for other sources of the
+        # same vehicle (groups of one vehicle end at different times); of
+        # those the best stays, graded fair if their speeds disagree.
+        for ev in sorted(found, key=_merit):
+            if any(_same_vehicle(ev, old) for old in self._recent):
+                log.debug("late source of the vehicle at %.1f s dropped", ev.pass_time_s)
                 continue
-            if ev.quality == "rejected":
-                self._held.append(ev)     # until a better source of the same moment may come
+            twins = [h for h in self._held if _same_vehicle(h, ev)]
+            if not twins:
+                self._held.append(ev)
                 continue
-            self._held = [h for h in self._held if not _same_vehicle(h, ev)]
-            events.append(ev)
+            best = min(twins + [ev], key=_merit)
+            conflict = any(_disagree(best, o) for o in twins + [ev] if o is not best)
+            if conflict and best.quality == "good":
+                best = dataclasses.replace(best, quality="fair",
+                                           reason="another tone of this vehicle gave a different "
+                                                  "speed (a close, fast pass?)")
+            self._held = [h for h in self._held if h not in twins] + [best]
         now = self.timebase.frame_time(self.tracker.frame)
-        due = [h for h in self._held if final or now - h.end_s > HOLD_REJECTED_S]
+        due = [h for h in self._held if final or now - h.end_s >
+               (HOLD_REJECTED_S if h.quality == "rejected" else HOLD_S)]
         self._held = [h for h in self._held if h not in due]
-        events += due
+        events = due
         self._recent.extend(events)
         events.sort(key=lambda e: e.pass_time_s if math.isfinite(e.pass_time_s) else e.start_s)
         return events
@@ -276,22 +291,31 @@ class Pipeline:
 
 
 def _merit(ev: PassEvent):
-    """Sort key, best event first: quality, then the smaller uncertainty."""
-    std = ev.speed_std_mps if math.isfinite(ev.speed_std_mps) else math.inf
-    return (("good", "fair", "rejected").index(ev.quality), std)
+    """Sort key, best event first: quality, then the more evidence (tones, frames)."""
+    return (("good", "fair", "rejected").index(ev.quality), -len(ev.tones_hz), -ev.n_frames)
+
+
+def _disagree(a: PassEvent, b: PassEvent) -> bool:
+    """Two accepted sources of one vehicle whose speeds do not agree."""
+    if "rejected" in (a.quality, b.quality):
+        return False
+    return abs(a.speed_mps - b.speed_mps) > DISAGREE_REL * max(a.speed_mps, b.speed_mps)
 
 
 def _same_vehicle(a: PassEvent, b: PassEvent) -> bool:
     """Two events that are one vehicle seen twice (a harmonic, a broken track).
 
-    They pass within ``SAME_VEHICLE_S`` of each other and either agree in
-    speed within ``SAME_VEHICLE_REL``, or one of them was rejected, or they
-    share a tone within 10 %.
+    They pass within ``SAME_MOMENT_S`` of each other; or within
+    ``SAME_VEHICLE_S`` and either agree in speed within ``SAME_VEHICLE_REL``,
+    or one of them was rejected, or they share a tone within 10 %.
     """
     if not (math.isfinite(a.pass_time_s) and math.isfinite(b.pass_time_s)):
         return False
-    if abs(a.pass_time_s - b.pass_time_s) >= SAME_VEHICLE_S:
+    dt = abs(a.pass_time_s - b.pass_time_s)
+    if dt >= SAME_VEHICLE_S:
         return False
+    if dt < SAME_MOMENT_S:
+        return True
     if abs(a.speed_mps - b.speed_mps) < SAME_VEHICLE_REL * max(a.speed_mps, b.speed_mps):
         return True
     if "rejected" in (a.quality, b.quality):

@@ -103,6 +103,7 @@ class Tracker:
         self.max_gap = max(1, int(round(max_gap_s / timebase.hop_s)))
         self.max_frames = int(round(max_track_s / timebase.hop_s))
         self.max_overlap = max(1, int(round(0.1 / timebase.hop_s)))
+        self.max_cross = max(1, int(round(0.5 / timebase.hop_s)))
         self.rel_tol = float(rel_tol)
         self.open: list[_Open] = []
         self.frame = -1   # last frame processed
@@ -145,29 +146,42 @@ class Tracker:
             else:
                 keep.append(t)
         for t in ended:
-            succ = self._successor(t, keep)
+            succ, crossing = self._successor(t, keep)
             if succ is None:
                 self._close(t, done)
-            else:   # the same tone after a jump or a dropout: one track
+            elif not crossing:   # the same tone after a dropout: one track
                 n = int(np.searchsorted(t.frame, succ.frame[0]))
+                succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame[:n], t.freq[:n], t.snr[:n]
+            else:   # two pieces of one pass that overlap: the overlap is ambiguous, drop it
+                n = int(np.searchsorted(t.frame, succ.frame[0]))
+                m = int(np.searchsorted(succ.frame, t.frame[-1], side="right"))
+                del succ.frame[:m], succ.freq[:m], succ.snr[:m]
                 succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame[:n], t.freq[:n], t.snr[:n]
         self.open = keep
 
     def _successor(self, t: _Open, candidates: list):
-        """A track that began just after ``t`` ended, where ``t`` was heading.
+        """A track that continues ``t``, and whether the two cross in time.
 
         At a close, fast pass the pitch falls faster than a frame can
         follow, and an interference null can hide a tone for a moment: the
-        piece after the break continues the piece before it. The pieces may
-        overlap by up to 0.1 s (the earlier one's last frames are dropped).
+        piece after the break continues the piece before it. Either it
+        starts (up to 0.1 s before t's end, or after it) where ``t`` was
+        heading; or the two overlap by up to ``max_cross_s`` around the
+        pass: it starts below where ``t`` then was and, at t's last frame,
+        is where ``t`` ended (a frame holding both the approaching and the
+        receding pitch).
+
+        Returns
+        -------
+        (track or None, crossing)
         """
-        best, best_key = None, None
+        best, best_key, crossing = None, None, False
         end, f_end = t.frame[-1], t.freq[-1]
         for o in candidates:
             s = o.frame[0]
-            if not (end - self.max_overlap < s <= end + self.max_gap) or o.frame[-1] <= end:
+            if not (end - self.max_cross < s <= end + self.max_gap) or o.frame[-1] <= end:
                 continue
-            # Compare with where t was just before o began (they may overlap).
+            # Where t was just before o began (they may overlap).
             n = int(np.searchsorted(t.frame, s))
             if n < 2:
                 continue
@@ -176,11 +190,22 @@ class Tracker:
             slope = (ref_f - t.freq[n - 1 - k]) / (ref_frame - t.frame[n - 1 - k])
             pred = max(ref_f + slope * (s - ref_frame), 0.5 * ref_f)
             tol = max(2.0 * self.bin_hz_at(ref_f), 0.05 * ref_f)
-            if abs(o.freq[0] - pred) <= tol and o.freq[0] <= ref_f * 1.003:
-                key = (s - end, abs(o.freq[0] - pred))
-                if best_key is None or key < best_key:
-                    best, best_key = o, key
-        return best
+            if s > end - self.max_overlap and abs(o.freq[0] - pred) <= tol and o.freq[0] <= ref_f * 1.003:
+                key = (0, s - end, abs(o.freq[0] - pred))
+                cross = False
+            elif s <= end and o.freq[0] <= ref_f * 1.003:
+                i = int(np.searchsorted(o.frame, end))
+                i = min(i, len(o.frame) - 1)
+                meet_tol = max(2.0 * self.bin_hz_at(f_end), 0.02 * f_end)
+                if abs(o.frame[i] - end) > 2 or abs(o.freq[i] - f_end) > meet_tol:
+                    continue
+                key = (1, end - s, abs(o.freq[i] - f_end))
+                cross = True
+            else:
+                continue
+            if best_key is None or key < best_key:
+                best, best_key, crossing = o, key, cross
+        return best, crossing
 
     def _assign(self, frame: int, freqs: list, snrs: list):
         pairs = []

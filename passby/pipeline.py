@@ -37,6 +37,9 @@ MIN_FALL_RATIO = 1.004
 #: A source heard for less than SHORT_SOURCE_S must fall by SHORT_FALL_RATIO:
 #: a pass seen that briefly is close and fast, so its pitch falls steeply.
 SHORT_SOURCE_S, SHORT_FALL_RATIO = 1.0, 1.02
+#: The tone must be LEVEL_RISE_DB louder within LEVEL_WINDOW_S (or two
+#: transit times d/v) of its pass than three such windows away.
+LEVEL_WINDOW_S, LEVEL_RISE_DB = 0.3, 3.0
 #: Two events closer than this in time and speed are one vehicle.
 SAME_VEHICLE_S, SAME_VEHICLE_REL = 1.0, 0.05
 #: Two events whose passes are this close in time are one vehicle whatever
@@ -227,6 +230,10 @@ class Pipeline:
         data = track_data(tracks, self.timebase, self.front.sigma_at)
         fit = fit_pass(data, self.c, self.settings.wind_mps)
         start_s, end_s = float(data.t.min()), float(data.t.max())
+        if fit.quality != "rejected" and not self._loudest_at_pass(main, fit):
+            log.debug("tracks at %.0f Hz from %.1f s: the level does not rise at the pass "
+                      "(a machine slowing down?)", main.freq_hz.mean(), start_s)
+            return None
         if fit.quality == "rejected" and not (
                 math.isfinite(fit.speed_std_mps) and fit.speed_std_mps <= MAX_REJECTED_REL_STD * fit.speed_mps):
             log.debug("tracks at %.0f Hz from %.1f s: no usable pass (%s)", main.freq_hz.mean(),
@@ -257,6 +264,28 @@ class Pipeline:
         while len(self.tracks_of) > 32:
             self.tracks_of.pop(next(iter(self.tracks_of)))
         return ev
+
+    def _loudest_at_pass(self, track, fit) -> bool:
+        """Whether the tone is louder around the pass than well before or after it.
+
+        A passing source is closest, so loudest (spherical spreading), near
+        its pass: three half-widths away it is at least about 6 times
+        farther, 15 dB down. A machine spinning down (a fan switched off)
+        also falls in pitch, but its level falls with it; without this check
+        its fall can fit the Doppler curve.
+        """
+        if track.level_db is None or not math.isfinite(fit.speed_mps) or fit.speed_mps <= 0:
+            return True
+        t = self.timebase.frame_time(track.frame)
+        heard = fit.pass_time_s + fit.closest_m / fit.c_mps
+        w = max(LEVEL_WINDOW_S, 2.0 * fit.closest_m / fit.speed_mps)
+        near = np.abs(t - heard) <= w
+        if not near.any():
+            return True
+        peak = float(np.max(track.level_db[near]))
+        far = [track.level_db[sel] for sel in (t < heard - 3 * w, t > heard + 3 * w)]
+        far = [float(np.median(x)) for x in far if x.size >= 10]
+        return not far or peak >= max(far) + LEVEL_RISE_DB
 
     def _dropped(self, start_s: float, end_s: float) -> int:
         return sum(b for a, e, b in self._gaps if e >= start_s and a <= end_s)

@@ -293,6 +293,9 @@ class Peaks:
     first_frame, n_frames : int
         The run of frames these peaks were picked from (frames without a
         peak included).
+    level_db : ndarray
+        Interpolated height of the peak in the raw power spectrum, dB
+        (relative; it follows the tone's received level).
     """
 
     frame: np.ndarray
@@ -300,6 +303,12 @@ class Peaks:
     snr_db: np.ndarray
     first_frame: int = 0
     n_frames: int = 0
+    level_db: np.ndarray = None
+
+    def take(self, keep) -> "Peaks":
+        """The peaks selected by a boolean mask or index array."""
+        return Peaks(self.frame[keep], self.freq_hz[keep], self.snr_db[keep], self.first_frame,
+                     self.n_frames, self.level_db[keep])
 
 
 def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
@@ -331,7 +340,7 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
     rows, cols = np.nonzero(is_peak)
     n = p_db.shape[0]
     if rows.size == 0:
-        return Peaks(np.empty(0, int), np.empty(0), np.empty(0), first_frame, n)
+        return Peaks(np.empty(0, int), np.empty(0), np.empty(0), first_frame, n, np.empty(0))
     cols = cols + 1
     heights = z[rows, cols]
     # At most max_per_frame per frame, the highest first.
@@ -360,9 +369,9 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
         _, first = np.unique(key, return_index=True)
         first.sort()
         rows, cols, heights = rows[first], cols[first], heights[first]
-    delta, _ = interpolate_peaks(p_db, rows, cols)
+    delta, level = interpolate_peaks(p_db, rows, cols)
     freq = (geometry.k_lo - 1 + cols + delta) * geometry.bin_hz
-    return Peaks(rows + first_frame, freq, heights.astype(float), first_frame, n)
+    return Peaks(rows + first_frame, freq, heights.astype(float), first_frame, n, level)
 
 
 class FrameAnalyser:
@@ -622,7 +631,7 @@ class FrontEnd:
         keep = peaks.freq_hz < self.split_hz if self.bands[i][0] == "low" else peaks.freq_hz >= self.split_hz
         if keep.all():
             return peaks
-        return Peaks(peaks.frame[keep], peaks.freq_hz[keep], peaks.snr_db[keep], peaks.first_frame, peaks.n_frames)
+        return peaks.take(keep)
 
 
 def merge_peaks(parts) -> Peaks:
@@ -634,4 +643,5 @@ def merge_peaks(parts) -> Peaks:
     first = min(p.first_frame for p in parts)
     last = max(p.first_frame + p.n_frames for p in parts)
     return Peaks(frame[order], np.concatenate([p.freq_hz for p in parts])[order],
-                 np.concatenate([p.snr_db for p in parts])[order], first, last - first)
+                 np.concatenate([p.snr_db for p in parts])[order], first, last - first,
+                 np.concatenate([p.level_db for p in parts])[order])

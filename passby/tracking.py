@@ -33,11 +33,14 @@ class Track:
         Sub-bin frequency in each frame.
     snr_db : ndarray
         Height of the peak above the whitened background.
+    level_db : ndarray
+        Height of the peak in the raw spectrum (follows the received level).
     """
 
     frame: np.ndarray
     freq_hz: np.ndarray
     snr_db: np.ndarray
+    level_db: np.ndarray = None
 
     @property
     def start(self) -> int:
@@ -56,24 +59,26 @@ class Track:
 class _Open:
     """A track still being followed (mutable, internal)."""
 
-    __slots__ = ("frame", "freq", "snr", "slope")
+    __slots__ = ("frame", "freq", "snr", "level", "slope")
 
-    def __init__(self, frame, freq, snr):
-        self.frame, self.freq, self.snr = [frame], [freq], [snr]
+    def __init__(self, frame, freq, snr, level):
+        self.frame, self.freq, self.snr, self.level = [frame], [freq], [snr], [level]
         self.slope = 0.0
 
     def predict(self, frame):
         return self.freq[-1] + self.slope * (frame - self.frame[-1])
 
-    def add(self, frame, freq, snr):
+    def add(self, frame, freq, snr, level):
         self.frame.append(frame)
         self.freq.append(freq)
         self.snr.append(snr)
+        self.level.append(level)
         k = min(3, len(self.frame) - 1)
         self.slope = (self.freq[-1] - self.freq[-1 - k]) / (self.frame[-1] - self.frame[-1 - k])
 
     def freeze(self) -> Track:
-        return Track(np.asarray(self.frame), np.asarray(self.freq), np.asarray(self.snr))
+        return Track(np.asarray(self.frame), np.asarray(self.freq), np.asarray(self.snr),
+                     np.asarray(self.level))
 
 
 class Tracker:
@@ -111,14 +116,14 @@ class Tracker:
     def push(self, peaks: Peaks) -> list:
         """Process a run of frames' peaks; returns the tracks that ended."""
         done = []
-        fr, f, s = peaks.frame, peaks.freq_hz, peaks.snr_db
+        fr, f, s, lv = peaks.frame, peaks.freq_hz, peaks.snr_db, peaks.level_db
         bounds = np.flatnonzero(np.diff(fr)) + 1 if fr.size else np.empty(0, int)
         starts = np.r_[0, bounds] if fr.size else np.empty(0, int)
         stops = np.r_[bounds, fr.size] if fr.size else np.empty(0, int)
         for a, b in zip(starts.tolist(), stops.tolist()):
             frame = int(fr[a])
             self._expire(frame, done)
-            self._assign(frame, f[a:b].tolist(), s[a:b].tolist())
+            self._assign(frame, f[a:b].tolist(), s[a:b].tolist(), lv[a:b].tolist())
             self.frame = frame
         self.frame = max(self.frame, peaks.first_frame + peaks.n_frames - 1)
         self._expire(self.frame + 1, done)
@@ -152,11 +157,13 @@ class Tracker:
             elif not crossing:   # the same tone after a dropout: one track
                 n = int(np.searchsorted(t.frame, succ.frame[0]))
                 succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame[:n], t.freq[:n], t.snr[:n]
+                succ.level[:0] = t.level[:n]
             else:   # two pieces of one pass that overlap: the overlap is ambiguous, drop it
                 n = int(np.searchsorted(t.frame, succ.frame[0]))
                 m = int(np.searchsorted(succ.frame, t.frame[-1], side="right"))
-                del succ.frame[:m], succ.freq[:m], succ.snr[:m]
+                del succ.frame[:m], succ.freq[:m], succ.snr[:m], succ.level[:m]
                 succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame[:n], t.freq[:n], t.snr[:n]
+                succ.level[:0] = t.level[:n]
         self.open = keep
 
     def _successor(self, t: _Open, candidates: list):
@@ -207,7 +214,7 @@ class Tracker:
                 best, best_key, crossing = o, key, cross
         return best, crossing
 
-    def _assign(self, frame: int, freqs: list, snrs: list):
+    def _assign(self, frame: int, freqs: list, snrs: list, levels: list):
         pairs = []
         rel_tol, bin_hz_at = self.rel_tol, self.bin_hz_at
         for i, t in enumerate(self.open):
@@ -227,12 +234,12 @@ class Tracker:
             for _, i, j in pairs:
                 if i in used_t or j in used_p:
                     continue
-                self.open[i].add(frame, freqs[j], snrs[j])
+                self.open[i].add(frame, freqs[j], snrs[j], levels[j])
                 used_t.add(i)
                 used_p.add(j)
         for j, fj in enumerate(freqs):
             if j not in used_p:
-                self.open.append(_Open(frame, fj, snrs[j]))
+                self.open.append(_Open(frame, fj, snrs[j], levels[j]))
 
 
 def log_ratio_stability(a: Track, b: Track, min_overlap: int):

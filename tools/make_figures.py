@@ -78,7 +78,7 @@ def build_log():
             for ev in result.events:
                 when = clip_start + dt.timedelta(seconds=ev.pass_time_s)
                 log.add(ev, when.strftime("%Y-%m-%dT%H:%M:%S.%fZ"), STATION)
-            rows.append((i, (START + dt.timedelta(seconds=v["time_s"])).strftime("%Y-%m-%dT%H:%M:%SZ"),
+            rows.append((i, (START + dt.timedelta(seconds=v["time_s"])).strftime("%Y-%m-%dT%H:%M:%S.%fZ"),
                          round(v["speed_kmh"], 2), round(v["closest_m"], 2), round(v["f1_hz"] * 2, 2),
                          len(result.events)))
             if sys.stderr.isatty():

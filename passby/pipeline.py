@@ -230,7 +230,7 @@ class Pipeline:
         data = track_data(tracks, self.timebase, self.front.sigma_at)
         fit = fit_pass(data, self.c, self.settings.wind_mps)
         start_s, end_s = float(data.t.min()), float(data.t.max())
-        if fit.quality != "rejected" and not self._loudest_at_pass(main, fit):
+        if not self._loudest_at_pass(main, fit):
             log.debug("tracks at %.0f Hz from %.1f s: the level does not rise at the pass "
                       "(a machine slowing down?)", main.freq_hz.mean(), start_s)
             return None

@@ -36,7 +36,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft
-import scipy.signal
 
 
 def decimation_factor(sample_rate: int, f_max_hz: float) -> int:
@@ -51,6 +50,57 @@ def decimation_factor(sample_rate: int, f_max_hz: float) -> int:
     (4, 1)
     """
     return max(1, int(sample_rate // (2.4 * f_max_hz)))
+
+
+def kaiser_order(attenuation_db: float, width: float):
+    """Length and shape of a Kaiser-window FIR for an attenuation and a transition.
+
+    Parameters
+    ----------
+    attenuation_db : float
+        Stop-band attenuation A, dB (above 50 dB).
+    width : float
+        Transition width as a fraction of the Nyquist frequency.
+
+    Returns
+    -------
+    numtaps, beta
+
+    Notes
+    -----
+    ``beta = 0.1102 (A - 8.7)`` for A > 50 dB and
+    ``numtaps = ceil((A - 7.95) / (2.285 pi width) + 1)`` (Kaiser's
+    formulas, Oppenheim & Schafer, Discrete-Time Signal Processing, 3rd ed.,
+    eqs. 7.62-7.63, with the width in units of pi rad/sample).
+
+    Examples
+    --------
+    >>> kaiser_order(80.0, 0.05)
+    (202, 7.85726)
+    """
+    if attenuation_db <= 50.0:
+        raise ValueError("attenuation_db must be above 50 dB")
+    beta = 0.1102 * (attenuation_db - 8.7)
+    numtaps = int(math.ceil((attenuation_db - 7.95) / (2.285 * math.pi * width) + 1))
+    return numtaps, round(beta, 6)
+
+
+def kaiser_lowpass(numtaps: int, cutoff: float, beta: float) -> np.ndarray:
+    """Linear-phase low-pass FIR by the window method, unit gain at DC.
+
+    ``h[n] = c sinc(c (n - (N-1)/2)) w[n]`` with ``c`` the cutoff as a
+    fraction of the Nyquist frequency and ``w`` the Kaiser window
+    (:func:`numpy.kaiser`), scaled so that ``sum(h) = 1``.
+
+    Examples
+    --------
+    >>> h = kaiser_lowpass(101, 0.25, 7.857)
+    >>> round(float(h.sum()), 12), bool(np.allclose(h, h[::-1]))
+    (1.0, True)
+    """
+    n = np.arange(numtaps) - (numtaps - 1) / 2.0
+    h = cutoff * np.sinc(cutoff * n) * np.kaiser(numtaps, beta)
+    return h / h.sum()
 
 
 class Decimator:
@@ -81,7 +131,7 @@ class Decimator:
     References
     ----------
     Crochiere & Rabiner (1983) [Crochiere]_; Kaiser window design,
-    :func:`scipy.signal.kaiserord`.
+    :func:`kaiser_order` and :func:`kaiser_lowpass`.
     """
 
     def __init__(self, sample_rate: int, q: int, passband_hz: float, k_multiple: int = 1):
@@ -96,12 +146,12 @@ class Decimator:
         fs_out = self.fs / self.q
         stop = fs_out / 2.0
         width = max(stop - passband_hz, 0.05 * stop)
-        numtaps, beta = scipy.signal.kaiserord(80.0, width / (0.5 * self.fs))
+        numtaps, beta = kaiser_order(80.0, width / (0.5 * self.fs))
         k = max(1, math.ceil((numtaps - 1) / (2 * self.q)))
         k = -(-k // k_multiple) * k_multiple
         m = 2 * k * self.q + 1
         cutoff = min(passband_hz + width / 2.0, stop)
-        h = scipy.signal.firwin(m, cutoff, window=("kaiser", beta), fs=self.fs)
+        h = kaiser_lowpass(m, cutoff / (0.5 * self.fs), beta)
         n_fft = self.q
         while n_fft < 16 * m or n_fft < 16384:
             n_fft *= 2
@@ -226,7 +276,8 @@ def gaussian_window(geometry: FrameGeometry) -> np.ndarray:
     """The analysis window (unit peak), float32."""
     n = geometry.n_window
     s = geometry.sigma_s * geometry.fs
-    return scipy.signal.windows.gaussian(n, s, sym=True).astype(np.float32)
+    k = np.arange(n) - (n - 1) / 2.0
+    return np.exp(-0.5 * (k / s) ** 2).astype(np.float32)
 
 
 def power_spectra_db(frames: np.ndarray, window: np.ndarray, geometry: FrameGeometry) -> np.ndarray:

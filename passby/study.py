@@ -43,7 +43,6 @@ from dataclasses import dataclass
 import numpy as np
 
 from passby.errors import InputError
-from passby.level import level_at_distance
 from passby.units import from_unit, to_unit
 
 #: The units a study can be reported in (the pace is 10 of them).
@@ -510,6 +509,7 @@ def check_tones(event, *, tone_band_hz=None, level_band_db=None, reference_dista
         reference_distance_m = float(reference_distance_m)
         d = event.closest_approach_m
         if laf is not None and math.isfinite(d) and d > 0:
+            from passby.level import level_at_distance
             at_ref = level_at_distance(laf, d, reference_distance_m)
     checked = at_ref if reference_distance_m is not None else laf
     level_outside = None

@@ -13,7 +13,6 @@ import os
 import sys
 
 from passby import __version__
-from passby.api import analyze
 from passby.errors import InputError, PassbyError
 from passby.physics import cramer_in_range, speed_of_sound
 from passby.settings import AnalysisSettings
@@ -94,6 +93,8 @@ class _Progress:
 
 
 def run(args) -> int:
+    from passby.api import analyze
+
     settings = _settings(args)
     c = speed_of_sound(settings.temperature_c, settings.humidity_pct, settings.pressure_pa)
     channel = None

@@ -28,6 +28,8 @@ import numpy as np
 
 from passby.physics import doppler_factor, plateau_solution
 
+#: Upper bound of the fitted speed, as a fraction of the speed of sound.
+SPEED_BOUND_C = 0.6
 #: Longest series of one tone that enters a fit (longer ones are thinned).
 MAX_POINTS_PER_TONE = 500
 
@@ -362,7 +364,7 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     starts, (fa, fr, v_pl, f0_pl) = _initial_guesses(data, c, wind_mps)
     t_lo, t_hi = float(data.t.min()), float(data.t.max())
     lower = np.r_[0.3, 0.3, t_lo - 30.0, np.full(data.n_tones, 10.0)]
-    upper = np.r_[0.6 * c, 1000.0, t_hi + 30.0, np.full(data.n_tones, 40000.0)]
+    upper = np.r_[SPEED_BOUND_C * c, 1000.0, t_hi + 30.0, np.full(data.n_tones, 40000.0)]
     best = None
     thin = slice(None, None, max(1, n // 300))
     sub = data.take(thin)

@@ -23,7 +23,7 @@ from collections import deque
 import numpy as np
 
 from passby.events import PassEvent
-from passby.fitting import fit_pass, track_data, windowed_factor
+from passby.fitting import SPEED_BOUND_C, fit_pass, track_data, windowed_factor
 from passby.physics import speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
@@ -230,6 +230,11 @@ class Pipeline:
         data = track_data(tracks, self.timebase, self.front.sigma_at)
         fit = fit_pass(data, self.c, self.settings.wind_mps)
         start_s, end_s = float(data.t.min()), float(data.t.max())
+        # A fit that runs to the speed's bound found no Doppler curve at all.
+        if math.isfinite(fit.speed_mps) and fit.speed_mps >= 0.99 * SPEED_BOUND_C * fit.c_mps:
+            log.debug("tracks at %.0f Hz from %.1f s: no Doppler curve fits (the speed runs to "
+                      "its bound; a machine slowing down?)", main.freq_hz.mean(), start_s)
+            return None
         if not self._loudest_at_pass(main, fit):
             log.debug("tracks at %.0f Hz from %.1f s: the level does not rise at the pass "
                       "(a machine slowing down?)", main.freq_hz.mean(), start_s)

@@ -412,8 +412,79 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     v, d, t0 = map(float, theta[:3])
     f0s = tuple(float(x) for x in theta[3:])
     quality, reason = _grade(v, std[0], d, std[1], t0, data, c, resid_hz, f0s, lower, upper)
-    return FitResult(v, float(std[0]), d, float(std[1]), t0, float(std[2]), f0s, resid_hz, n,
-                     "curve", quality, reason, c)
+    curve = FitResult(v, float(std[0]), d, float(std[1]), t0, float(std[2]), f0s, resid_hz, n,
+                      "curve", quality, reason, c)
+    if quality == "rejected" and reason and reason.startswith(_PLATEAU_FALLBACK_REASONS):
+        fallback = plateau_fit(data, c, wind_mps, t0 if math.isfinite(t0) else None)
+        if fallback is not None:
+            return fallback
+    return curve
+
+
+#: Rejections of the curve fit after which the two plateaus may still serve.
+_PLATEAU_FALLBACK_REASONS = ("closest distance at its bound (0.3 m)",)
+
+
+def plateau_fit(data: TrackData, c: float, wind_mps: float = 0.0, t0=None,
+                part: float = 0.25, min_s: float = 1.0, flat: float = 0.002):
+    """Speed from the two plateaus alone, when the curve fit cannot resolve the pass.
+
+    Used when the curve fit runs to the lower bound of the closest distance:
+    the pass was too close and fast for the frames, so the pitch jumped
+    from one plateau to the other.
+
+    The first and last ``part`` of the strongest tone's measurements must
+    each last ``min_s`` and be flat (their own change below ``flat`` of
+    the difference between them), so that they are the plateaus
+    ``fa = f0 / (1 - v/c)`` and ``fr = f0 / (1 + v/c)`` and not a part of
+    the sweep (which would bias the speed low). The closed form of
+    :func:`passby.physics.plateau_solution` gives the speed and the rest
+    frequency; the uncertainty follows from the plateaus' scatter,
+    inflated for correlation. The closest distance is not known (NaN).
+
+    Returns
+    -------
+    FitResult or None
+        ``method="plateaus"``, graded ``fair``; None when the plateaus do not
+        qualify.
+    """
+    sel = data.tone == 0
+    t, f = data.t[sel], data.f[sel]
+    order = np.argsort(t)
+    t, f = t[order], f[order]
+    k = int(math.ceil(part * t.size))
+    if k < 10:
+        return None
+    a, b = f[:k], f[-k:]
+    if t[k - 1] - t[0] < min_s or t[-1] - t[-k] < min_s:
+        return None
+    fa, fr = float(np.median(a)), float(np.median(b))
+    if fa <= fr * 1.004:
+        return None
+    gap = fa - fr
+    for seg in (a, b):
+        half = seg.size // 2
+        if abs(float(np.median(seg[:half])) - float(np.median(seg[half:]))) > flat * gap:
+            return None
+    v, f0 = plateau_solution(fa, fr, c, wind_mps)
+    if not 0.0 < v < 0.5 * c:
+        return None
+
+    def sd_of_median(seg):
+        e = seg - np.median(seg)
+        return 1.2533 * 1.4826 * float(np.median(np.abs(e))) * math.sqrt(
+            integrated_autocorrelation(e, 300) / seg.size)
+
+    sa, sb = sd_of_median(a), sd_of_median(b)
+    s2 = (fa + fr) ** 2
+    v_std = math.hypot(2.0 * c * fr / s2 * sa, 2.0 * c * fa / s2 * sb)
+    if t0 is None or not (t[0] <= t0 <= t[-1]):
+        t0 = float(t[int(np.argmin(np.abs(f - f0)))])
+    nan = float("nan")
+    tones = [f0] + [f0 * float(np.median(data.f[data.tone == j]) / np.median(f))
+                    for j in range(1, data.n_tones)]
+    return FitResult(v, v_std, nan, nan, t0, nan, tuple(tones), nan, int(t.size), "plateaus",
+                     "fair", "from the two plateaus only: the pass itself was not resolved", c)
 
 
 def _thinned(data: TrackData, per_tone: int) -> TrackData:

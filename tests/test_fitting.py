@@ -1,0 +1,68 @@
+"""The fit on synthetic frequency tracks (the exact model, physics.received_frequency)."""
+
+import math
+
+import numpy as np
+import pytest
+
+from passby.fitting import TrackData, error_inflation, fit_pass, plateau_fit, robust_least_squares
+from passby.physics import plateau_solution, received_frequency
+
+
+def track(t, f, tone=0, snr=20.0, sigma_p=0.0):
+    n = t.size
+    return TrackData(t, f, np.full(n, snr), np.full(n, tone), 1, np.full(n, sigma_p))
+
+
+def test_fit_recovers_the_model_parameters():
+    # frequencies from the exact model (Ferguson & Quinn 1994) with white noise
+    c, v, d, t0, f0 = 340.0, 25.0, 6.0, 10.0, 600.0
+    t = np.arange(4.0, 16.0, 0.01)
+    rng = np.random.default_rng(7)
+    f = received_frequency(t, f0, v, d, t0, c) + rng.normal(0.0, 0.3, t.size)
+    r = fit_pass(track(t, f), c)
+    assert r.quality == "good" and r.method == "curve"
+    assert r.speed_mps == pytest.approx(v, abs=3 * r.speed_std_mps + 0.01)
+    assert r.closest_m == pytest.approx(d, rel=0.02)
+    assert r.pass_time_s == pytest.approx(t0, abs=0.01)
+    assert r.tones_hz[0] == pytest.approx(f0, rel=1e-4)
+
+
+def test_robust_least_squares_matches_a_linear_fit():
+    # on a straight line without outliers the soft-L1 solution is the least-squares one (numpy.polyfit)
+    rng = np.random.default_rng(2)
+    x = np.linspace(0.0, 1.0, 200)
+    y = 3.0 * x - 1.0 + rng.normal(0.0, 0.01, x.size)
+    sol = robust_least_squares(lambda p: p[0] * x + p[1] - y, np.array([0.0, 0.0]),
+                               np.array([-10.0, -10.0]), np.array([10.0, 10.0]), 1.0, 50)
+    ref = np.polyfit(x, y, 1)
+    assert np.allclose(sol.x, ref, atol=1e-5)
+
+
+def test_plateau_fit_uses_the_closed_form():
+    # v = c (fa - fr) / (fa + fr), f0 = 2 fa fr / (fa + fr) (Ferguson & Quinn 1994)
+    c = 340.0
+    fa, fr = 500.0 * c / (c - 30.0), 500.0 * c / (c + 30.0)
+    t = np.r_[np.arange(0.0, 3.0, 0.01), np.arange(5.0, 8.0, 0.01)]
+    rng = np.random.default_rng(1)
+    f = np.where(t < 4.0, fa, fr) + rng.normal(0.0, 0.2, t.size)
+    r = plateau_fit(track(t, f), c)
+    v_ref, f0_ref = plateau_solution(fa, fr, c)
+    assert r.method == "plateaus" and r.quality == "fair" and math.isnan(r.closest_m)
+    assert r.speed_mps == pytest.approx(v_ref, abs=3 * r.speed_std_mps)
+    assert r.tones_hz[0] == pytest.approx(f0_ref, rel=1e-3)
+
+
+def test_plateau_fit_refuses_a_sweep():
+    # a track that is still sweeping at its ends would bias the plateau formula low
+    c = 340.0
+    t = np.arange(0.0, 8.0, 0.01)
+    f = received_frequency(t, 500.0, 30.0, 20.0, 4.0, c)
+    assert plateau_fit(track(t, f), c) is None
+
+
+def test_error_inflation_of_a_moving_average():
+    # a 5-point moving average of white noise: variance of the sum inflated by 5 (Bayley & Hammersley 1946)
+    rng = np.random.default_rng(4)
+    e = np.convolve(rng.standard_normal(40000), np.ones(5) / 5, mode="valid")
+    assert error_inflation(e, np.arange(e.size, dtype=float)) == pytest.approx(5.0, rel=0.15)

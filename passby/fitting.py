@@ -324,7 +324,7 @@ def _initial_guesses(data: TrackData, c, wind_mps):
             v = min(v0 * dv, 0.45 * c)
             d = float(np.clip(d_slope * dd, 0.5, 500.0))
             starts.append(np.r_[v, d, t_mid - d / c, f0s])
-    return starts, (fa, fr, v0, f00)
+    return starts
 
 
 def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
@@ -361,7 +361,7 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     n = data.t.size
     snr = np.minimum(10.0 ** (data.snr_db / 10.0), 1000.0)
     sw = np.sqrt(snr / snr.mean())
-    starts, (fa, fr, v_pl, f0_pl) = _initial_guesses(data, c, wind_mps)
+    starts = _initial_guesses(data, c, wind_mps)
     t_lo, t_hi = float(data.t.min()), float(data.t.max())
     lower = np.r_[0.3, 0.3, t_lo - 30.0, np.full(data.n_tones, 10.0)]
     upper = np.r_[SPEED_BOUND_C * c, 1000.0, t_hi + 30.0, np.full(data.n_tones, 40000.0)]

@@ -140,13 +140,12 @@ class Pipeline:
 
     def finish(self) -> list:
         """End of stream: the events still open."""
-        events = []
         ended = []
         for pk in self.front.finish():
             ended += self.tracker.push(pk)
         ended += self.tracker.finish()
         groups = self.grouper.push(ended, [], self.tracker.frame, final=True)
-        return events + self._events_from(groups, final=True)
+        return self._events_from(groups, final=True)
 
     # -- stages -----------------------------------------------------------
     def _advance(self, peaks) -> list:
@@ -181,9 +180,11 @@ class Pipeline:
             best = min(twins + [ev], key=_merit)
             conflict = any(_disagree(best, o) for o in twins + [ev] if o is not best)
             if conflict and best.quality == "good":
-                best = dataclasses.replace(best, quality="fair",
-                                           reason="another tone of this vehicle gave a different "
-                                                  "speed (a close, fast pass?)")
+                graded = dataclasses.replace(best, quality="fair",
+                                             reason="another tone of this vehicle gave a different "
+                                                    "speed (a close, fast pass?)")
+                self.tracks_of[id(graded)] = self.tracks_of.pop(id(best), ())
+                best = graded
             self._held = [h for h in self._held if h not in twins] + [best]
         now = self.timebase.frame_time(self.tracker.frame)
         due = [h for h in self._held if final or now - h.end_s >

@@ -471,7 +471,6 @@ class FrameAnalyser:
         self._partial = []                           # p_db rows of the chunk being filled
         self._n_chunks = 0                           # chunks completed
         self._done = 0                               # chunks whose peaks were emitted
-        self.last_frame = -1                         # last frame computed
         self._bg, self._bg_key = None, None          # background of the current chunk group
 
     # -- framing -------------------------------------------------------
@@ -491,7 +490,6 @@ class FrameAnalyser:
             frames = np.lib.stride_tricks.sliding_window_view(seg, g.n_window)[:: g.hop]
             self._add_rows(power_spectra_db(frames, self.window, g))
             self._next_frame += n_frames
-            self.last_frame = self._next_frame - 1
             keep_from = g.start + self._next_frame * g.hop - self._buf_start
             self._buf = self._buf[keep_from:].copy()
             self._buf_start += keep_from

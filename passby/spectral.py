@@ -395,31 +395,52 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
     cols = cols + 1
     heights = z[rows, cols]
     # At most max_per_frame per frame, the highest first.
-    order = np.lexsort((-heights, rows))
+    # (one sort on a combined key: row first, then the higher first)
+    order = np.argsort(rows * 1.0e4 - np.clip(heights, -1.0e3, 1.0e3), kind="stable")
     rows, cols, heights = rows[order], cols[order], heights[order]
     starts = np.r_[0, np.flatnonzero(np.diff(rows)) + 1]
     rank = np.arange(rows.size) - np.repeat(starts, np.diff(np.r_[starts, rows.size]))
     keep = rank < max_per_frame
     rows, cols, heights = rows[keep], cols[keep], heights[keep]
     # The whitened maximum can sit a bin off the raw one (the background is
-    # not flat): climb to the raw spectrum's own maximum before interpolating.
-    last = p_db.shape[1] - 2
+    # not flat): climb to the raw spectrum's own maximum before interpolating
+    # (flat indices into the spectra; only the peaks still climbing are
+    # looked at again).
+    width = p_db.shape[1]
+    flat_p = np.ascontiguousarray(p_db).reshape(-1)
+    base = rows.astype(np.int64) * width
+    cols = cols.astype(np.int64)
+    moving = np.arange(rows.size)
+    moved = False
     for _ in range(4):
-        left = p_db[rows, cols - 1] > p_db[rows, cols]
-        right = p_db[rows, cols + 1] > p_db[rows, cols]
-        if not (left | right).any():
+        at = base[moving] + cols[moving]
+        here = flat_p[at]
+        left = flat_p[at - 1] > here
+        right = flat_p[at + 1] > here
+        go = left | right
+        if not go.any():
+            moving = moving[:0]
             break
-        cols = np.clip(cols - left + (right & ~left), 1, last)
+        moving, left, right = moving[go], left[go], right[go]
+        cols[moving] = np.clip(cols[moving] - left + (right & ~left), 1, width - 2)
+        moved = True
     # A whitened maximum on the flank of a raw peak is no peak of its own.
-    top = (p_db[rows, cols] >= p_db[rows, cols - 1]) & (p_db[rows, cols] >= p_db[rows, cols + 1])
-    rows, cols, heights = rows[top], cols[top], heights[top]
-    # Two whitened maxima may climb to the same raw one: keep it once.
-    uniq = np.r_[True, (np.diff(rows) != 0) | (np.diff(cols) != 0)]
-    if not uniq.all():
-        key = rows.astype(np.int64) * p_db.shape[1] + cols
+    if moving.size:
+        at = base[moving] + cols[moving]
+        here = flat_p[at]
+        flank = moving[(flat_p[at - 1] > here) | (flat_p[at + 1] > here)]
+        if flank.size:
+            top = np.ones(rows.size, dtype=bool)
+            top[flank] = False
+            rows, cols, heights, base = rows[top], cols[top], heights[top], base[top]
+    # Two whitened maxima may climb to the same raw one: keep it once (the
+    # first, which is the higher).
+    if moved:
+        key = base + cols
         _, first = np.unique(key, return_index=True)
-        first.sort()
-        rows, cols, heights = rows[first], cols[first], heights[first]
+        if first.size < key.size:
+            first.sort()
+            rows, cols, heights = rows[first], cols[first], heights[first]
     delta, level = interpolate_peaks(p_db, rows, cols)
     freq = (geometry.k_lo - 1 + cols + delta) * geometry.bin_hz
     return Peaks(rows + first_frame, freq, heights.astype(float), first_frame, n, level)
@@ -443,6 +464,10 @@ class FrameAnalyser:
     percentile : float
         Low percentile of the chunk medians: a line present less than
         ``100 - percentile`` percent of the window stands out.
+    faint_db : float
+        Threshold of the faint peaks of :meth:`faint_near`.
+    keep_frames : int
+        How many of the last frames' spectra are kept for :meth:`faint_near`.
 
     Notes
     -----
@@ -456,9 +481,15 @@ class FrameAnalyser:
 
     def __init__(self, geometry: FrameGeometry, threshold_db: float, chunk_frames: int = 50,
                  past_chunks: int = 120, future_chunks: int = 8, min_chunks: int = 60,
-                 percentile: float = 10.0):
+                 percentile: float = 10.0, faint_db: float = 5.0, keep_frames: int = 0):
         self.g = geometry
         self.threshold_db = float(threshold_db)
+        self.faint_db = min(float(faint_db), self.threshold_db)
+        self.keep_frames = int(keep_frames)
+        # Ring buffers of the last keep_frames spectra (frame p in row
+        # p % keep_frames), their frame medians and their chunks' backgrounds.
+        self._ring = self._ring_med = self._ring_bg = self._ring_slot = None
+        self._ring_last = -1
         self.window = gaussian_window(geometry)
         self.chunk_frames = int(chunk_frames)
         self.past, self.future, self.min_chunks = int(past_chunks), int(future_chunks), int(min_chunks)
@@ -550,10 +581,102 @@ class FrameAnalyser:
                 self._bg_key = key
             first = j * self.chunk_frames
             out.append(pick_peaks(self._chunks[j], self._bg, first, self.g, self.threshold_db))
+            if self.keep_frames > 0:
+                self._keep(j, first, self._chunks[j], self._bg)
             self._done += 1
             del self._chunks[j]
             for k in [k for k in self._medians if k < self._done - self.past - self.BG_EVERY]:
                 del self._medians[k]
+        return out
+
+    def _keep(self, j: int, first: int, p_db: np.ndarray, bg: np.ndarray):
+        """Keep a chunk's spectra, frame medians and background in the rings."""
+        k = self.keep_frames
+        if self._ring is None:
+            n_slots = k // self.chunk_frames + 2
+            self._ring = np.zeros((k, p_db.shape[1]), dtype=np.float32)
+            self._ring_med = np.zeros(k, dtype=np.float32)
+            self._ring_slot = np.zeros(k, dtype=np.int64)
+            self._ring_bg = np.zeros((n_slots, p_db.shape[1]), dtype=np.float32)
+        z = p_db - bg
+        sub = z[:, ::3]
+        half = sub.shape[1] // 2
+        rows = (first + np.arange(p_db.shape[0])) % k
+        self._ring[rows] = p_db
+        self._ring_med[rows] = np.partition(sub, half, axis=1)[:, half]
+        slot = j % self._ring_bg.shape[0]
+        self._ring_bg[slot] = bg
+        self._ring_slot[rows] = slot
+        self._ring_last = first + p_db.shape[0] - 1
+
+    def faint_near(self, frame_lo: int, course_hz: np.ndarray, half_width_hz: float) -> list:
+        """Faint peaks near given courses, from the kept spectra.
+
+        For frames ``frame_lo .. frame_lo + n - 1`` (those still kept), the
+        local maxima of the raw spectrum within ``half_width_hz`` of each
+        course that stand ``faint_db`` above the whitened background (as in
+        :func:`pick_peaks`), with their sub-bin frequency (parabola in dB,
+        :func:`interpolate_peaks`) and height. Only the bins near the
+        courses are looked at, so following a tone costs little.
+
+        Parameters
+        ----------
+        frame_lo : int
+        course_hz : ndarray, shape (k, n)
+            Heard frequency of each of ``k`` courses in each frame.
+        half_width_hz : float or ndarray of shape (k,)
+
+        Returns
+        -------
+        list of Peaks
+            One per course (empty where the band or the kept frames do not
+            reach).
+        """
+        g = self.g
+        course_hz = np.atleast_2d(np.asarray(course_hz, dtype=float))
+        n_course, n = course_hz.shape
+        empty = Peaks(np.empty(0, int), np.empty(0), np.empty(0), frame_lo, 0, np.empty(0))
+        lo = max(frame_lo, self._ring_last - self.keep_frames + 1)
+        hi = min(frame_lo + n - 1, self._ring_last)
+        if self._ring is None or lo > hi:
+            return [empty] * n_course
+        frames = np.arange(lo, hi + 1)
+        rows = frames % self.keep_frames
+        width = self._ring.shape[1]
+        half = np.broadcast_to(np.asarray(half_width_hz, dtype=float), (n_course,))
+        w = int(math.ceil(float(np.max(half)) / g.bin_hz)) + 1
+        offs = np.arange(-w, w + 1)
+        centre = np.rint(course_hz[:, lo - frame_lo: hi - frame_lo + 1] / g.bin_hz).astype(np.int64) - (g.k_lo - 1)
+        cols = centre[:, :, None] + offs                              # (k, frames, 2w + 1)
+        ok = (cols >= 1) & (cols <= width - 2)
+        cols = np.clip(cols, 1, width - 2)
+        r = rows[None, :, None]
+        here = self._ring[r, cols]
+        left = self._ring[r, cols - 1]
+        right = self._ring[r, cols + 1]
+        white = here - self._ring_bg[self._ring_slot[r], cols] - self._ring_med[r]
+        near = np.abs((cols + (g.k_lo - 1)) * g.bin_hz - course_hz[:, lo - frame_lo: hi - frame_lo + 1, None]) \
+            <= half[:, None, None] + g.bin_hz
+        top = ok & near & (here > left) & (here >= right) & (white >= self.faint_db)
+        out = []
+        for i in range(n_course):
+            sel = top[i]
+            fi, ci = np.nonzero(sel)
+            if fi.size == 0:
+                out.append(empty)
+                continue
+            c = cols[i][sel]
+            # Clipping at the band's edges can repeat a column: once each.
+            key = fi.astype(np.int64) * width + c
+            _, uniq = np.unique(key, return_index=True)
+            a, b, cc = left[i][sel][uniq], here[i][sel][uniq], right[i][sel][uniq]
+            den = a - 2.0 * b + cc
+            safe = np.where(den < -1e-9, den, -1e-9)
+            delta = np.clip(0.5 * (a - cc) / safe, -0.5, 0.5)
+            level = b - 0.25 * (a - cc) * delta
+            freq = (g.k_lo - 1 + c[uniq] + delta) * g.bin_hz
+            out.append(Peaks(frames[fi[uniq]], freq.astype(float), white[i][sel][uniq].astype(float),
+                             lo, hi - lo + 1, level.astype(float)))
         return out
 
 
@@ -585,6 +708,10 @@ class FrontEnd:
     sample_rate : int
     f_min_hz, f_max_hz : float
     threshold_db : float
+    faint_db : float
+        Threshold of the faint peaks of :meth:`faint_near`.
+    faint_keep_s : float
+        How long the spectra behind them are kept, seconds of frames.
 
     Attributes
     ----------
@@ -597,7 +724,8 @@ class FrontEnd:
     SIGMA_HIGH_S = 0.012
     LOW_RATE_HZ = 2000.0
 
-    def __init__(self, sample_rate: int, f_min_hz: float, f_max_hz: float, threshold_db: float):
+    def __init__(self, sample_rate: int, f_min_hz: float, f_max_hz: float, threshold_db: float,
+                 faint_db: float = 5.0, faint_keep_s: float = 40.0):
         q = decimation_factor(sample_rate, f_max_hz)
         fs_high = sample_rate / q
         hop = max(1, int(round(0.01 * fs_high)))
@@ -627,7 +755,8 @@ class FrontEnd:
             start = m * g.hop + delay - (g.n_window - 1) // 2
             g = FrameGeometry(g.fs, g.sigma_s, g.n_window, g.n_fft, g.hop, g.k_lo, g.k_hi, start,
                               m * g.hop / g.fs)
-            self.bands.append((name, dec, FrameAnalyser(g, threshold_db)))
+            keep = int(round(faint_keep_s * g.fs / g.hop))
+            self.bands.append((name, dec, FrameAnalyser(g, threshold_db, faint_db=faint_db, keep_frames=keep)))
         self.timebase = Timebase(hop / fs_high, m * hop / fs_high)
         bins = [fa.g.bin_hz for _, _, fa in self.bands]
         self._bin_low, self._bin_high = bins[0], bins[-1]
@@ -664,20 +793,35 @@ class FrontEnd:
                 self._queues[i] += fa.finish()
         out = []
         while all(self._queues):
-            parts = [self._own(i, q.pop(0)) for i, q in enumerate(self._queues)]
+            parts = [self._own(self.bands[i][0], q.pop(0)) for i, q in enumerate(self._queues)]
             out.append(merge_peaks(parts))
         if final:
-            rest = [self._own(i, p) for i, q in enumerate(self._queues) for p in q]
+            rest = [self._own(self.bands[i][0], p) for i, q in enumerate(self._queues) for p in q]
             if rest:
                 out.append(merge_peaks(rest))
             self._queues = [[] for _ in self.bands]
         return out
 
-    def _own(self, i: int, peaks: Peaks) -> Peaks:
-        """The peaks of band ``i`` on its own side of the split (the bins overlap)."""
+    def faint_near(self, frame_lo: int, course_hz: np.ndarray, half_width_hz) -> list:
+        """Faint peaks near courses (see :meth:`FrameAnalyser.faint_near`), both bands.
+
+        Each band gives the peaks on its own side of the split; one
+        :class:`Peaks` per course.
+        """
+        per_band = [[self._own(name, p) for p in fa.faint_near(frame_lo, course_hz, half_width_hz)]
+                    for name, _, fa in self.bands]
+        out = []
+        for parts in zip(*per_band):
+            parts = [p for p in parts if p.frame.size]
+            out.append(merge_peaks(parts) if len(parts) > 1 else parts[0] if parts else
+                       Peaks(np.empty(0, int), np.empty(0), np.empty(0), frame_lo, 0, np.empty(0)))
+        return out
+
+    def _own(self, name: str, peaks: Peaks) -> Peaks:
+        """The peaks of band ``name`` on its own side of the split (the bins overlap)."""
         if len(self.bands) == 1:
             return peaks
-        keep = peaks.freq_hz < self.split_hz if self.bands[i][0] == "low" else peaks.freq_hz >= self.split_hz
+        keep = peaks.freq_hz < self.split_hz if name == "low" else peaks.freq_hz >= self.split_hz
         if keep.all():
             return peaks
         return peaks.take(keep)

@@ -62,3 +62,63 @@ def test_power_spectrum_matches_numpy_fft():
     ref = 10 * np.log10(ref[:, g.k_lo - 1: g.k_hi + 2] + 1e-30)
     assert np.allclose(p, ref, atol=1e-3)
     assert isinstance(g, FrameGeometry)
+
+
+def _noisy_spectra(seed, n_frames=50):
+    # Periodogram of white noise: exponential power per bin (common practice, no source),
+    # on a sloping background, with two steady tones.
+    from passby.spectral import make_geometry
+    g = make_geometry(12000.0, 60.0, 4500.0)
+    rng = np.random.default_rng(seed)
+    nb = g.k_hi - g.k_lo + 3
+    bg = np.linspace(0.0, -20.0, nb)
+    p = bg + 10.0 * np.log10(rng.exponential(size=(n_frames, nb)))
+    p[:, 100:103] += 20.0
+    p[:, 300] += 30.0
+    return g, p, bg
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_no_peak_is_reported_twice(seed):
+    from passby.spectral import pick_peaks
+    # two whitened maxima that climb to one raw maximum are one peak
+    g, p, bg = _noisy_spectra(seed, 200)
+    peaks = pick_peaks(p, bg, 0, g, 3.0, max_per_frame=40)
+    key = peaks.frame.astype(np.int64) * 100000 + np.round(peaks.freq_hz * 10).astype(np.int64)
+    assert peaks.frame.size > 1000
+    assert np.unique(key).size == key.size
+
+
+def test_faint_peaks_near_a_course_find_a_weak_tone():
+    # A 1000.3 Hz sine in white noise at about 8 dB above the background per
+    # bin (numpy's sine and normal generator are the reference): the peaks
+    # near its course give its frequency in most frames, to a fraction of a
+    # bin; noise alone leaves a peak that near in about a fifth of the frames.
+    from passby.spectral import FrameAnalyser, make_geometry
+    fs = 12000.0
+    g = make_geometry(fs, 60.0, 4500.0)
+    rng = np.random.default_rng(7)
+    n = int(40 * fs)
+    t = np.arange(n) / fs
+    x = rng.standard_normal(n)
+    on = (t > 20.0) & (t < 30.0)
+    x[on] += 0.18 * np.sin(2 * np.pi * 1000.3 * t[on])
+    fa = FrameAnalyser(g, 12.0, faint_db=5.0, keep_frames=4000)
+    strong = []
+    for i in range(0, n, 12000):
+        strong += fa.push(x[i:i + 12000].astype(np.float32))
+    strong += fa.finish()
+    first = 0
+    frames = np.arange(first, 3900)
+    times = g.frame_time(frames)
+    got = fa.faint_near(first, np.full((1, frames.size), 1000.3), 1.0 * g.bin_hz)[0]
+    ft = g.frame_time(got.frame)
+    inside = (ft > 20.5) & (ft < 29.5)
+    outside = (ft < 19.5) | (ft > 30.5)
+    n_in = np.sum((times > 20.5) & (times < 29.5))
+    n_out = np.sum((times < 19.5) | (times > 30.5))
+    assert np.unique(got.frame[inside]).size > 0.75 * n_in
+    assert np.median(np.abs(got.freq_hz[inside] - 1000.3)) < 0.4 * g.bin_hz
+    assert np.unique(got.frame[outside]).size < 0.3 * n_out
+    # the tone is too faint for the tracking threshold itself
+    assert sum(np.sum(np.abs(p.freq_hz - 1000.3) < g.bin_hz) for p in strong) < 0.1 * n_in

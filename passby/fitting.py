@@ -327,7 +327,7 @@ def _initial_guesses(data: TrackData, c, wind_mps):
     return starts
 
 
-def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
+def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0, start=None) -> FitResult:
     """Fit the exact moving-source model to one source's measurements.
 
     Parameters
@@ -337,6 +337,9 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
         Speed of sound, m/s.
     wind_mps : float
         Wind component along the direction of travel, m/s.
+    start : array_like, optional
+        ``(v, d, t0, f0_1 .. f0_K)`` of an earlier fit of the same source:
+        the only starting point then (a refit on more data).
 
     Returns
     -------
@@ -361,7 +364,10 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0) -> FitResult:
     n = data.t.size
     snr = np.minimum(10.0 ** (data.snr_db / 10.0), 1000.0)
     sw = np.sqrt(snr / snr.mean())
-    starts = _initial_guesses(data, c, wind_mps)
+    if start is not None and len(start) == p:
+        starts = [np.asarray(start, dtype=float)]
+    else:
+        starts = _initial_guesses(data, c, wind_mps)
     t_lo, t_hi = float(data.t.min()), float(data.t.max())
     lower = np.r_[0.3, 0.3, t_lo - 30.0, np.full(data.n_tones, 10.0)]
     upper = np.r_[SPEED_BOUND_C * c, 1000.0, t_hi + 30.0, np.full(data.n_tones, 40000.0)]

@@ -27,7 +27,7 @@ from passby.fitting import SPEED_BOUND_C, fit_pass, track_data, windowed_factor
 from passby.physics import speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
-from passby.tracking import SourceGrouper, Tracker, fall_ratio
+from passby.tracking import SourceGrouper, Tracker, fall_ratio, follow_course
 
 log = logging.getLogger(__name__)
 
@@ -56,6 +56,15 @@ DISAGREE_REL = 0.08
 #: says nothing about a vehicle (a short fragment, a steady line's wobble):
 #: it is not reported at all.
 MAX_REJECTED_REL_STD = 0.3
+#: Following a fitted source's tones through faint peaks: how far before the
+#: tracks' start to look (s), the window over which at least FOLLOW_RATE of
+#: the frames must hold a peak near the course (s), and how far from the
+#: fitted course a peak may lie (bins).
+FOLLOW_REACH_S, FOLLOW_WINDOW_S, FOLLOW_RATE, FOLLOW_TOL_BINS = 20.0, 1.0, 0.3, 1.5
+#: How far (relative) a tone's rest frequency may wander while followed.
+FOLLOW_WANDER = 0.02
+#: Rounds of following and refitting (each follows the last fit's course).
+FOLLOW_ROUNDS = 1
 
 
 class Pipeline:
@@ -190,7 +199,7 @@ class Pipeline:
         due = [h for h in self._held if final or now - h.end_s >
                (HOLD_REJECTED_S if h.quality == "rejected" else HOLD_S)]
         self._held = [h for h in self._held if h not in due]
-        events = due
+        events = [self._followed(h) for h in due]
         self._recent.extend(events)
         events.sort(key=lambda e: e.pass_time_s if math.isfinite(e.pass_time_s) else e.start_s)
         return events
@@ -218,7 +227,16 @@ class Pipeline:
         # Three quarters of the track, not just half of it: a track that sweeps
         # through a pass of its own is not explained by a flat part of another.
         spread = float(np.percentile(np.abs(rest - f0), 75))
-        return spread < max(0.004 * f0, 1.5 * self.front.bin_hz_at(f0))
+        if spread >= max(0.004 * f0, 1.5 * self.front.bin_hz_at(f0)):
+            return False
+        # A track within the event's own span lies on its course; one that
+        # reaches beyond it must also change pitch as the course says: a slow
+        # vehicle's low tone hardly changes in Hz, yet it is no tone of the
+        # vehicle whose receding plateau it happens to lie on.
+        if t[0] >= ev.start_s - 5.0 and t[-1] <= ev.end_s + 5.0:
+            return True
+        raw = float(np.percentile(np.abs(track.freq_hz - np.median(track.freq_hz)), 75))
+        return spread < 0.5 * raw
 
     def _event(self, tracks):
         main = tracks[0]
@@ -228,8 +246,17 @@ class Pipeline:
             log.debug("tracks at %.0f Hz from %.1f s: no Doppler fall, not a pass-by",
                       main.freq_hz.mean(), self.timebase.frame_time(main.start))
             return None
+        return self._fitted(tracks)
+
+    def _fitted(self, tracks, start=None):
+        """Fit a source's tracks; its event, or None when it is no pass-by.
+
+        ``start``: an earlier fit's parameters to start from (see
+        :func:`~passby.fitting.fit_pass`).
+        """
+        main = tracks[0]
         data = track_data(tracks, self.timebase, self.front.sigma_at)
-        fit = fit_pass(data, self.c, self.settings.wind_mps)
+        fit = fit_pass(data, self.c, self.settings.wind_mps, start)
         start_s, end_s = float(data.t.min()), float(data.t.max())
         # A fit that runs to the speed's bound found no Doppler curve at all.
         if math.isfinite(fit.speed_mps) and fit.speed_mps >= 0.99 * SPEED_BOUND_C * fit.c_mps:
@@ -270,6 +297,52 @@ class Pipeline:
         while len(self.tracks_of) > 32:
             self.tracks_of.pop(next(iter(self.tracks_of)))
         return ev
+
+    def _followed(self, ev: PassEvent) -> PassEvent:
+        """The event refitted after following its tones along the fitted course.
+
+        The tracks end where their peaks sink below the tracking threshold,
+        but the fitted curve says where each tone goes on: its faint peaks
+        are followed outwards (:func:`~passby.tracking.follow_course`) as far
+        as the kept frames reach, and the source is fitted again on the
+        longer tracks, whose plateaus pin the speed down better. The refit
+        replaces the event unless it is rejected when the first fit was not.
+        """
+        tracks = self.tracks_of.get(id(ev))
+        if not tracks or not math.isfinite(ev.speed_mps):
+            return ev
+        tb = self.timebase
+        lo = max(0, int(math.floor((ev.start_s - FOLLOW_REACH_S - tb.t_first) / tb.hop_s)))
+        hi = self.tracker.frame
+        if hi <= lo:
+            return ev
+        t = tb.frame_time(np.arange(lo, hi + 1))
+        window = max(1, int(round(FOLLOW_WINDOW_S / tb.hop_s)))
+        best = ev
+        for _ in range(FOLLOW_ROUNDS):
+            factors, courses, tols, halves = [], [], [], []
+            for tr in tracks:
+                f = float(np.median(tr.freq_hz))
+                sigma_p = float(self.front.sigma_at(f)) / math.sqrt(2.0)
+                factor = windowed_factor(t, best.speed_mps, best.closest_approach_m, best.pass_time_s,
+                                         best.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
+                rest = float(np.median(tr.freq_hz / factor[np.clip(tr.frame - lo, 0, t.size - 1)]))
+                tol = FOLLOW_TOL_BINS * self.front.bin_hz_at(f)
+                factors.append(factor)
+                courses.append(rest * factor)
+                tols.append(tol)
+                halves.append(tol + FOLLOW_WANDER * rest)
+            faint = self.front.faint_near(lo, np.array(courses), np.array(halves))
+            longer = [follow_course(tr, fp, factor, lo, tol, window, FOLLOW_RATE)
+                      for tr, fp, factor, tol in zip(tracks, faint, factors, tols)]
+            if sum(t.frame.size for t in longer) == sum(t.frame.size for t in tracks):
+                break
+            start = np.r_[best.speed_mps, best.closest_approach_m, best.pass_time_s, best.tones_hz]
+            new = self._fitted(longer, start if len(best.tones_hz) == len(longer) else None)
+            if new is None or (new.quality == "rejected" and ev.quality != "rejected"):
+                break
+            best = new
+        return best
 
     def _loudest_at_pass(self, track, fit) -> bool:
         """Whether the tone is louder around the pass than well before or after it.

@@ -369,3 +369,116 @@ def fall_ratio(track: Track, part: float = 0.2) -> float:
     """
     n = max(1, int(math.ceil(part * track.frame.size)))
     return float(np.median(track.freq_hz[:n]) / np.median(track.freq_hz[-n:]))
+
+
+def follow_course(track: Track, faint: Peaks, factor: np.ndarray, first_frame: int,
+                  tol_hz: float, window: int, min_rate: float = 0.5, smooth: float = 0.1) -> Track:
+    """Extend a track through faint peaks along a known Doppler course.
+
+    Once a pass has been fitted, the heard frequency of each of its tones
+    is known at every frame up to the slow wander of the source's pitch:
+    ``f(p) = f_rest(p) * factor(p)``. Divided by the factor, the track
+    becomes a nearly flat line ``f_rest``, which is followed outwards
+    from both ends of the track (and across its inner gaps) through peaks
+    too faint to start a track of their own: in each frame the peak
+    nearest to the course is taken when it lies within ``tol_hz`` of it,
+    and the running rest frequency follows the taken peaks (exponential
+    smoothing, weight ``smooth``). Noise alone also leaves a peak near the
+    course now and then, so following stops where fewer than ``min_rate``
+    of the last ``window`` frames had one, and the peaks of that last
+    window are given back.
+
+    Parameters
+    ----------
+    track : Track
+    faint : Peaks
+        Peaks of frames ``first_frame .. first_frame + factor.size - 1``
+        above a low threshold (the track's own peaks among them).
+    factor : ndarray
+        Fitted Doppler factor (heard over rest frequency) of each of those
+        frames.
+    first_frame : int
+    tol_hz : float
+        Largest distance of a taken peak from the course, Hz.
+    window : int
+        Frames over which the rate of taken peaks is judged.
+    min_rate : float
+    smooth : float
+
+    Returns
+    -------
+    Track
+        The track with the peaks taken added, in frame order.
+
+    Examples
+    --------
+    A steady tone (factor 1) heard in frames 0-99, tracked in 40-59 only:
+
+    >>> from passby.spectral import Peaks
+    >>> fr = np.arange(100)
+    >>> faint = Peaks(fr, np.full(100, 500.0), np.full(100, 8.0), 0, 100, np.zeros(100))
+    >>> tr = Track(np.arange(40, 60), np.full(20, 500.0), np.full(20, 20.0), np.zeros(20))
+    >>> follow_course(tr, faint, np.ones(100), 0, 2.0, 10).frame.size
+    100
+    """
+    n = factor.size
+    rest = track.freq_hz / factor[np.clip(track.frame - first_frame, 0, n - 1)]
+    # Only peaks near the course can be taken: keep those within the
+    # tolerance plus 3 % of the track's rest frequencies (the most the
+    # running rest frequency can wander), in frame order, as Python lists.
+    q_all = faint.frame - first_frame
+    ok = (q_all >= 0) & (q_all < n)
+    q_all = q_all[ok]
+    f_rest = faint.freq_hz[ok] / factor[q_all]
+    band = tol_hz / float(np.min(factor)) + 0.03 * float(np.max(rest))
+    ok2 = (f_rest >= float(np.min(rest)) - band) & (f_rest <= float(np.max(rest)) + band)
+    idx = np.flatnonzero(ok)[ok2]
+    q_all = q_all[ok2]
+    order = np.argsort(q_all, kind="stable")
+    idx, q_all = idx[order], q_all[order]
+    bounds = np.searchsorted(q_all, np.arange(n + 1)).tolist()
+    f_all = faint.freq_hz[idx].tolist()
+    s_all, l_all = faint.snr_db[idx].tolist(), faint.level_db[idx].tolist()
+    fac = factor.tolist()
+    taken = []   # (frame, freq, snr, level)
+    window = max(1, int(window))
+
+    def walk(frames, ref, judge):
+        got = []
+        hits = [False] * window
+        n_hits = 0
+        for i, p in enumerate(frames):
+            q = p - first_frame
+            if q < 0 or q >= n:
+                break
+            a, b = bounds[q], bounds[q + 1]
+            hit = False
+            if a < b:
+                course = ref * fac[q]
+                j = min(range(a, b), key=lambda m: abs(f_all[m] - course))
+                if abs(f_all[j] - course) <= tol_hz:
+                    got.append((i, p, f_all[j], s_all[j], l_all[j]))
+                    ref += smooth * (f_all[j] / fac[q] - ref)
+                    hit = True
+            n_hits += hit - hits[i % window]
+            hits[i % window] = hit
+            if judge and i + 1 >= window and n_hits < min_rate * window:
+                got = [g for g in got if g[0] <= i - window]
+                break
+        taken.extend(g[1:] for g in got)
+
+    k = min(10, rest.size)
+    walk(range(track.end + 1, first_frame + n), float(np.median(rest[-k:])), True)
+    walk(range(track.start - 1, first_frame - 1, -1), float(np.median(rest[:k])), True)
+    gaps = np.flatnonzero(np.diff(track.frame) > 1)
+    for g in gaps.tolist():
+        a, b = int(track.frame[g]), int(track.frame[g + 1])
+        walk(range(a + 1, b), float(np.median(rest[max(0, g - k + 1):g + 1])), False)
+    if not taken:
+        return track
+    fr = np.r_[track.frame, [x[0] for x in taken]].astype(int)
+    order = np.argsort(fr, kind="stable")
+    lv = track.level_db if track.level_db is not None else np.full(track.frame.size, np.nan)
+    return Track(fr[order], np.r_[track.freq_hz, [x[1] for x in taken]][order],
+                 np.r_[track.snr_db, [x[2] for x in taken]][order],
+                 np.r_[lv, [x[3] for x in taken]][order])

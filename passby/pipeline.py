@@ -61,8 +61,13 @@ MAX_REJECTED_REL_STD = 0.3
 #: the frames must hold a peak near the course (s), and how far from the
 #: fitted course a peak may lie (bins).
 FOLLOW_REACH_S, FOLLOW_WINDOW_S, FOLLOW_RATE, FOLLOW_TOL_BINS = 20.0, 1.0, 0.3, 1.5
+#: A good event whose speed is this certain (m/s) is not followed further.
+FOLLOW_ABOVE_STD_MPS = 0.08
 #: How far (relative) a tone's rest frequency may wander while followed.
 FOLLOW_WANDER = 0.02
+#: A track joins a vehicle found as a new tone when its rest frequency is
+#: this far (relative) from every tone the vehicle has.
+ADOPT_REL = 0.01
 #: Rounds of following and refitting (each follows the last fit's course).
 FOLLOW_ROUNDS = 1
 
@@ -170,7 +175,9 @@ class Pipeline:
         groups = sorted(groups, key=lambda g: -sum(t.strength for t in g))
         found = []
         for tracks in groups:
-            if self._explained(tracks, found):
+            owner = self._explained(tracks, found)
+            if owner is not None:
+                self._adopt(owner, tracks)
                 continue
             ev = self._event(tracks)
             if ev is not None:
@@ -204,16 +211,37 @@ class Pipeline:
         events.sort(key=lambda e: e.pass_time_s if math.isfinite(e.pass_time_s) else e.start_s)
         return events
 
-    def _explained(self, tracks, batch) -> bool:
-        """Whether every track follows the fitted curve of a vehicle already found."""
-        for ev in list(self._recent) + batch:
+    def _explained(self, tracks, batch):
+        """The vehicle already found whose fitted curve every track follows, or None."""
+        for ev in list(self._recent) + self._held + batch:
             if ev.quality == "rejected" or not math.isfinite(ev.speed_mps):
                 continue
             if all(self._follows(t, ev) for t in tracks):
                 log.debug("tracks at %.0f Hz are tones of the vehicle at %.1f s",
                           tracks[0].freq_hz.mean(), ev.pass_time_s)
-                return True
-        return False
+                return ev
+        return None
+
+    def _adopt(self, ev: PassEvent, tracks):
+        """Give a vehicle not yet reported the new tones among ``tracks``.
+
+        They join its fit when it is followed and refitted; a track of a tone
+        it already has adds nothing (following finds that tone's peaks).
+        """
+        if ev in self._recent or id(ev) not in self.tracks_of:
+            return
+        mine = self.tracks_of[id(ev)]
+        rests = [f for f in ev.tones_hz if math.isfinite(f)]
+        for tr in tracks:
+            t = self.timebase.frame_time(tr.frame)
+            sigma_p = self.front.sigma_at(tr.freq_hz) / math.sqrt(2.0)
+            factor = windowed_factor(t, ev.speed_mps, ev.closest_approach_m, ev.pass_time_s,
+                                     ev.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
+            f0 = float(np.median(tr.freq_hz / factor))
+            if all(abs(f0 - r) > ADOPT_REL * r for r in rests):
+                mine = mine + [tr]
+                rests.append(f0)
+        self.tracks_of[id(ev)] = mine
 
     def _follows(self, track, ev) -> bool:
         t = self.timebase.frame_time(track.frame)
@@ -311,6 +339,8 @@ class Pipeline:
         tracks = self.tracks_of.get(id(ev))
         if not tracks or not math.isfinite(ev.speed_mps):
             return ev
+        if ev.quality == "good" and ev.speed_std_mps <= FOLLOW_ABOVE_STD_MPS and len(tracks) == len(ev.tones_hz):
+            return ev   # measured well already: nothing to gain
         tb = self.timebase
         lo = max(0, int(math.floor((ev.start_s - FOLLOW_REACH_S - tb.t_first) / tb.hop_s)))
         hi = self.tracker.frame

@@ -362,8 +362,16 @@ class Peaks:
                      self.n_frames, self.level_db[keep])
 
 
+def frame_levels(p_db: np.ndarray, background_db: np.ndarray) -> np.ndarray:
+    """Each frame's broadband level above the background: the median of every third bin, dB."""
+    sub = (p_db - background_db)[:, ::3]
+    half = sub.shape[1] // 2
+    return np.partition(sub, half, axis=1)[:, half]
+
+
 def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
-               geometry: FrameGeometry, threshold_db: float, max_per_frame: int = 8) -> Peaks:
+               geometry: FrameGeometry, threshold_db: float, max_per_frame: int = 8,
+               levels: np.ndarray | None = None) -> Peaks:
     """Local maxima of the whitened spectrum that stand above a threshold.
 
     The whitened spectrum is ``p_db - background_db`` minus its median over
@@ -381,11 +389,11 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
     threshold_db : float
     max_per_frame : int
         Keep at most this many peaks per frame, the highest.
+    levels : ndarray, optional
+        :func:`frame_levels` of these spectra, when already known.
     """
     z = p_db - background_db
-    # The frame's broadband level: the median of every third bin.
-    sub = z[:, ::3]
-    z -= np.partition(sub, sub.shape[1] // 2, axis=1)[:, sub.shape[1] // 2: sub.shape[1] // 2 + 1]
+    z -= (frame_levels(p_db, background_db) if levels is None else levels)[:, None]
     inner = z[:, 1:-1]
     is_peak = (inner > z[:, :-2]) & (inner >= z[:, 2:]) & (inner >= threshold_db)
     rows, cols = np.nonzero(is_peak)
@@ -580,17 +588,19 @@ class FrameAnalyser:
                 self._bg = np.partition(stack, kth, axis=1)[:, kth]
                 self._bg_key = key
             first = j * self.chunk_frames
-            out.append(pick_peaks(self._chunks[j], self._bg, first, self.g, self.threshold_db))
+            levels = frame_levels(self._chunks[j], self._bg)
+            out.append(pick_peaks(self._chunks[j], self._bg, first, self.g, self.threshold_db,
+                                  levels=levels))
             if self.keep_frames > 0:
-                self._keep(j, first, self._chunks[j], self._bg)
+                self._keep(j, first, self._chunks[j], self._bg, levels)
             self._done += 1
             del self._chunks[j]
             for k in [k for k in self._medians if k < self._done - self.past - self.BG_EVERY]:
                 del self._medians[k]
         return out
 
-    def _keep(self, j: int, first: int, p_db: np.ndarray, bg: np.ndarray):
-        """Keep a chunk's spectra, frame medians and background in the rings."""
+    def _keep(self, j: int, first: int, p_db: np.ndarray, bg: np.ndarray, levels: np.ndarray):
+        """Keep a chunk's spectra, frame levels and background in the rings."""
         k = self.keep_frames
         if self._ring is None:
             n_slots = k // self.chunk_frames + 2
@@ -598,12 +608,9 @@ class FrameAnalyser:
             self._ring_med = np.zeros(k, dtype=np.float32)
             self._ring_slot = np.zeros(k, dtype=np.int64)
             self._ring_bg = np.zeros((n_slots, p_db.shape[1]), dtype=np.float32)
-        z = p_db - bg
-        sub = z[:, ::3]
-        half = sub.shape[1] // 2
         rows = (first + np.arange(p_db.shape[0])) % k
         self._ring[rows] = p_db
-        self._ring_med[rows] = np.partition(sub, half, axis=1)[:, half]
+        self._ring_med[rows] = levels
         slot = j % self._ring_bg.shape[0]
         self._ring_bg[slot] = bg
         self._ring_slot[rows] = slot

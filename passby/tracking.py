@@ -383,7 +383,8 @@ def follow_course(track: Track, faint: Peaks, factor: np.ndarray, first_frame: i
     too faint to start a track of their own: in each frame the peak
     nearest to the course is taken when it lies within ``tol_hz`` of it,
     and the running rest frequency follows the taken peaks (exponential
-    smoothing, weight ``smooth``). Noise alone also leaves a peak near the
+    smoothing, weight ``smooth`` per peak, applied to the median of each
+    block of 25 frames). Noise alone also leaves a peak near the
     course now and then, so following stops where fewer than ``min_rate``
     of the last ``window`` frames had one, and the peaks of that last
     window are given back.
@@ -425,7 +426,7 @@ def follow_course(track: Track, faint: Peaks, factor: np.ndarray, first_frame: i
     rest = track.freq_hz / factor[np.clip(track.frame - first_frame, 0, n - 1)]
     # Only peaks near the course can be taken: keep those within the
     # tolerance plus 3 % of the track's rest frequencies (the most the
-    # running rest frequency can wander), in frame order, as Python lists.
+    # running rest frequency can wander), in frame order.
     q_all = faint.frame - first_frame
     ok = (q_all >= 0) & (q_all < n)
     q_all = q_all[ok]
@@ -436,49 +437,73 @@ def follow_course(track: Track, faint: Peaks, factor: np.ndarray, first_frame: i
     q_all = q_all[ok2]
     order = np.argsort(q_all, kind="stable")
     idx, q_all = idx[order], q_all[order]
-    bounds = np.searchsorted(q_all, np.arange(n + 1)).tolist()
-    f_all = faint.freq_hz[idx].tolist()
-    s_all, l_all = faint.snr_db[idx].tolist(), faint.level_db[idx].tolist()
-    fac = factor.tolist()
-    taken = []   # (frame, freq, snr, level)
+    bounds = np.searchsorted(q_all, np.arange(n + 1))
+    f_all, s_all, l_all = faint.freq_hz[idx], faint.snr_db[idx], faint.level_db[idx]
+    taken = []   # arrays of (frame, freq, snr, level) rows
     window = max(1, int(window))
+    block = 25   # frames judged together (the running rest frequency moves per block)
 
-    def walk(frames, ref, judge):
-        got = []
-        hits = [False] * window
-        n_hits = 0
-        for i, p in enumerate(frames):
-            q = p - first_frame
-            if q < 0 or q >= n:
-                break
-            a, b = bounds[q], bounds[q + 1]
-            hit = False
-            if a < b:
-                course = ref * fac[q]
-                j = min(range(a, b), key=lambda m: abs(f_all[m] - course))
-                if abs(f_all[j] - course) <= tol_hz:
-                    got.append((i, p, f_all[j], s_all[j], l_all[j]))
-                    ref += smooth * (f_all[j] / fac[q] - ref)
-                    hit = True
-            n_hits += hit - hits[i % window]
-            hits[i % window] = hit
-            if judge and i + 1 >= window and n_hits < min_rate * window:
-                got = [g for g in got if g[0] <= i - window]
-                break
-        taken.extend(g[1:] for g in got)
+    def walk(start, stop, step, ref, judge):
+        frames = np.arange(start, stop, step)
+        frames = frames[(frames >= first_frame) & (frames < first_frame + n)]
+        got = []                      # (position in walk, frame, freq, snr, level)
+        hits = np.zeros(frames.size, dtype=bool)
+        cs = np.zeros(frames.size + 1, dtype=np.int64)   # running count of hits
+        for b0 in range(0, frames.size, block):
+            fb = frames[b0:b0 + block]
+            q = fb - first_frame
+            lo, cnt = bounds[q], bounds[q + 1] - bounds[q]
+            if cnt.sum():
+                owner = np.repeat(np.arange(fb.size), cnt)
+                cand = np.repeat(lo, cnt) + (np.arange(owner.size) - np.repeat(np.cumsum(cnt) - cnt, cnt))
+                dist = np.abs(f_all[cand] - ref * factor[q[owner]])
+                order = np.lexsort((dist, owner))
+                owner, cand, dist = owner[order], cand[order], dist[order]
+                first = np.r_[True, owner[1:] != owner[:-1]]
+                owner, cand, dist = owner[first], cand[first], dist[first]
+                ok = dist <= tol_hz
+                owner, cand = owner[ok], cand[ok]
+                if owner.size:
+                    hits[b0 + owner] = True
+                    got.append(np.c_[b0 + owner, fb[owner], f_all[cand], s_all[cand], l_all[cand]])
+                    r = f_all[cand] / factor[q[owner]]
+                    ref += (1.0 - (1.0 - smooth) ** owner.size) * (float(np.median(r)) - ref)
+            if judge:
+                upto = b0 + fb.size
+                cs[b0 + 1: upto + 1] = cs[b0] + np.cumsum(hits[b0:upto])
+                pos = np.arange(max(window - 1, b0), upto)
+                low = pos[cs[pos + 1] - cs[pos + 1 - window] < min_rate * window]
+                if low.size:
+                    i = int(low[0])
+                    got = [g[g[:, 0] <= i - window] for g in got]
+                    break
+        taken.extend(g[:, 1:] for g in got if g.size)
 
     k = min(10, rest.size)
-    walk(range(track.end + 1, first_frame + n), float(np.median(rest[-k:])), True)
-    walk(range(track.start - 1, first_frame - 1, -1), float(np.median(rest[:k])), True)
-    gaps = np.flatnonzero(np.diff(track.frame) > 1)
-    for g in gaps.tolist():
-        a, b = int(track.frame[g]), int(track.frame[g + 1])
-        walk(range(a + 1, b), float(np.median(rest[max(0, g - k + 1):g + 1])), False)
+    walk(track.end + 1, first_frame + n, 1, float(np.median(rest[-k:])), True)
+    walk(track.start - 1, first_frame - 1, -1, float(np.median(rest[:k])), True)
+    # Inner gaps: the rest frequency there is that of the track around them.
+    inner = np.setdiff1d(np.arange(track.start + 1, track.end), track.frame)
+    inner = inner[(inner >= first_frame) & (inner < first_frame + n)]
+    if inner.size:
+        q = inner - first_frame
+        ref = np.interp(inner, track.frame, rest)
+        lo, cnt = bounds[q], bounds[q + 1] - bounds[q]
+        if cnt.sum():
+            owner = np.repeat(np.arange(inner.size), cnt)
+            cand = np.repeat(lo, cnt) + (np.arange(owner.size) - np.repeat(np.cumsum(cnt) - cnt, cnt))
+            dist = np.abs(f_all[cand] - ref[owner] * factor[q[owner]])
+            order = np.lexsort((dist, owner))
+            owner, cand, dist = owner[order], cand[order], dist[order]
+            first = np.r_[True, owner[1:] != owner[:-1]] & (dist <= tol_hz)
+            owner, cand = owner[first], cand[first]
+            taken.append(np.c_[inner[owner], f_all[cand], s_all[cand], l_all[cand]])
+    taken = [x for x in taken if x.size]
     if not taken:
         return track
-    fr = np.r_[track.frame, [x[0] for x in taken]].astype(int)
+    new = np.concatenate(taken)
+    fr = np.r_[track.frame, new[:, 0]].astype(int)
     order = np.argsort(fr, kind="stable")
     lv = track.level_db if track.level_db is not None else np.full(track.frame.size, np.nan)
-    return Track(fr[order], np.r_[track.freq_hz, [x[1] for x in taken]][order],
-                 np.r_[track.snr_db, [x[2] for x in taken]][order],
-                 np.r_[lv, [x[3] for x in taken]][order])
+    return Track(fr[order], np.r_[track.freq_hz, new[:, 1]][order], np.r_[track.snr_db, new[:, 2]][order],
+                 np.r_[lv, new[:, 3]][order])

@@ -5,12 +5,13 @@ microphone's (or a replay's). Nothing here knows where the samples came
 from, so the same audio gives the same numbers either way::
 
     samples -> Decimator -> FrameAnalyser -> Tracker -> SourceGrouper
-            -> fit_pass (per source) -> PassEvent
+            -> fit_pass (per source) -> follow_course -> fit_pass -> PassEvent
 
 Every stage keeps only the state it needs (the decimation filter's
-history, about twenty seconds of per-bin background summaries, the open
-tracks and the ended tracks awaiting their group), so memory does not grow
-with the length of the stream.
+history, about a minute of per-bin background summaries, the last 40 s of
+spectra for following tones into the noise, the open tracks and the ended
+tracks awaiting their group), so memory does not grow with the length of
+the stream.
 """
 
 from __future__ import annotations
@@ -342,7 +343,8 @@ class Pipeline:
         if ev.quality == "good" and ev.speed_std_mps <= FOLLOW_ABOVE_STD_MPS and len(tracks) == len(ev.tones_hz):
             return ev   # measured well already: nothing to gain
         tb = self.timebase
-        lo = max(0, int(math.floor((ev.start_s - FOLLOW_REACH_S - tb.t_first) / tb.hop_s)))
+        lo = max(0, int(math.floor((ev.start_s - FOLLOW_REACH_S - tb.t_first) / tb.hop_s)),
+                 self.front.kept_from)
         hi = self.tracker.frame
         if hi <= lo:
             return ev

@@ -604,9 +604,11 @@ class FrameAnalyser:
         k = self.keep_frames
         if self._ring is None:
             n_slots = k // self.chunk_frames + 2
-            self._ring = np.zeros((k, p_db.shape[1]), dtype=np.float32)
+            # Half precision: 0.06 dB steps at most for levels within 128 dB
+            # of full scale, a hundredth of a bin in the interpolated frequency.
+            self._ring = np.zeros((k, p_db.shape[1]), dtype=np.float16)
             self._ring_med = np.zeros(k, dtype=np.float32)
-            self._ring_slot = np.zeros(k, dtype=np.int64)
+            self._ring_slot = np.zeros(k, dtype=np.int32)
             self._ring_bg = np.zeros((n_slots, p_db.shape[1]), dtype=np.float32)
         rows = (first + np.arange(p_db.shape[0])) % k
         self._ring[rows] = p_db
@@ -615,6 +617,13 @@ class FrameAnalyser:
         self._ring_bg[slot] = bg
         self._ring_slot[rows] = slot
         self._ring_last = first + p_db.shape[0] - 1
+
+    @property
+    def kept_from(self) -> int:
+        """First frame whose spectrum is still kept (-1 before any)."""
+        if self._ring is None:
+            return -1
+        return max(0, self._ring_last - self.keep_frames + 1)
 
     def faint_near(self, frame_lo: int, course_hz: np.ndarray, half_width_hz: float) -> list:
         """Faint peaks near given courses, from the kept spectra.
@@ -648,41 +657,38 @@ class FrameAnalyser:
         if self._ring is None or lo > hi:
             return [empty] * n_course
         frames = np.arange(lo, hi + 1)
-        rows = frames % self.keep_frames
+        r = (frames % self.keep_frames)[:, None]
         width = self._ring.shape[1]
         half = np.broadcast_to(np.asarray(half_width_hz, dtype=float), (n_course,))
-        w = int(math.ceil(float(np.max(half)) / g.bin_hz)) + 1
-        offs = np.arange(-w, w + 1)
-        centre = np.rint(course_hz[:, lo - frame_lo: hi - frame_lo + 1] / g.bin_hz).astype(np.int64) - (g.k_lo - 1)
-        cols = centre[:, :, None] + offs                              # (k, frames, 2w + 1)
-        ok = (cols >= 1) & (cols <= width - 2)
-        cols = np.clip(cols, 1, width - 2)
-        r = rows[None, :, None]
-        here = self._ring[r, cols]
-        left = self._ring[r, cols - 1]
-        right = self._ring[r, cols + 1]
-        white = here - self._ring_bg[self._ring_slot[r], cols] - self._ring_med[r]
-        near = np.abs((cols + (g.k_lo - 1)) * g.bin_hz - course_hz[:, lo - frame_lo: hi - frame_lo + 1, None]) \
-            <= half[:, None, None] + g.bin_hz
-        top = ok & near & (here > left) & (here >= right) & (white >= self.faint_db)
         out = []
-        for i in range(n_course):
-            sel = top[i]
-            fi, ci = np.nonzero(sel)
+        for i in range(n_course):    # one course at a time: small temporaries
+            w = int(math.ceil(float(half[i]) / g.bin_hz)) + 1
+            course = course_hz[i, lo - frame_lo: hi - frame_lo + 1]
+            centre = np.rint(course / g.bin_hz).astype(np.int64) - (g.k_lo - 1)
+            cols = centre[:, None] + np.arange(-w, w + 1)              # (frames, 2w + 1)
+            ok = (cols >= 1) & (cols <= width - 2)
+            cols = np.clip(cols, 1, width - 2)
+            here = self._ring[r, cols].astype(np.float32)
+            left = self._ring[r, cols - 1].astype(np.float32)
+            right = self._ring[r, cols + 1].astype(np.float32)
+            white = here - self._ring_bg[self._ring_slot[r], cols] - self._ring_med[r]
+            near = np.abs((cols + (g.k_lo - 1)) * g.bin_hz - course[:, None]) <= half[i] + g.bin_hz
+            top = ok & near & (here > left) & (here >= right) & (white >= self.faint_db)
+            fi, _ = np.nonzero(top)
             if fi.size == 0:
                 out.append(empty)
                 continue
-            c = cols[i][sel]
+            c = cols[top]
             # Clipping at the band's edges can repeat a column: once each.
             key = fi.astype(np.int64) * width + c
             _, uniq = np.unique(key, return_index=True)
-            a, b, cc = left[i][sel][uniq], here[i][sel][uniq], right[i][sel][uniq]
+            a, b, cc = left[top][uniq], here[top][uniq], right[top][uniq]
             den = a - 2.0 * b + cc
             safe = np.where(den < -1e-9, den, -1e-9)
             delta = np.clip(0.5 * (a - cc) / safe, -0.5, 0.5)
             level = b - 0.25 * (a - cc) * delta
             freq = (g.k_lo - 1 + c[uniq] + delta) * g.bin_hz
-            out.append(Peaks(frames[fi[uniq]], freq.astype(float), white[i][sel][uniq].astype(float),
+            out.append(Peaks(frames[fi[uniq]], freq.astype(float), white[top][uniq].astype(float),
                              lo, hi - lo + 1, level.astype(float)))
         return out
 
@@ -808,6 +814,11 @@ class FrontEnd:
                 out.append(merge_peaks(rest))
             self._queues = [[] for _ in self.bands]
         return out
+
+    @property
+    def kept_from(self) -> int:
+        """First frame whose spectra every band still keeps."""
+        return max(fa.kept_from for _, _, fa in self.bands)
 
     def faint_near(self, frame_lo: int, course_hz: np.ndarray, half_width_hz) -> list:
         """Faint peaks near courses (see :meth:`FrameAnalyser.faint_near`), both bands.

@@ -234,24 +234,23 @@ class Pipeline:
         mine = self.tracks_of[id(ev)]
         rests = [f for f in ev.tones_hz if math.isfinite(f)]
         for tr in tracks:
-            t = self.timebase.frame_time(tr.frame)
-            sigma_p = self.front.sigma_at(tr.freq_hz) / math.sqrt(2.0)
-            factor = windowed_factor(t, ev.speed_mps, ev.closest_approach_m, ev.pass_time_s,
-                                     ev.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
-            f0 = float(np.median(tr.freq_hz / factor))
+            f0 = float(np.median(tr.freq_hz / self._factor(ev, self.timebase.frame_time(tr.frame), tr.freq_hz)))
             if all(abs(f0 - r) > ADOPT_REL * r for r in rests):
                 mine = mine + [tr]
                 rests.append(f0)
         self.tracks_of[id(ev)] = mine
 
+    def _factor(self, ev: PassEvent, t, freq_hz):
+        """The fitted Doppler factor of ``ev`` at ``t``, as the band of ``freq_hz`` measures it."""
+        sigma_p = self.front.sigma_at(freq_hz) / math.sqrt(2.0)
+        return windowed_factor(t, ev.speed_mps, ev.closest_approach_m, ev.pass_time_s,
+                               ev.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
+
     def _follows(self, track, ev) -> bool:
         t = self.timebase.frame_time(track.frame)
         if t[-1] < ev.start_s - 5.0 or t[0] > ev.end_s + 5.0:
             return False
-        sigma_p = self.front.sigma_at(track.freq_hz) / math.sqrt(2.0)
-        factor = windowed_factor(t, ev.speed_mps, ev.closest_approach_m, ev.pass_time_s,
-                                 ev.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
-        rest = track.freq_hz / factor
+        rest = track.freq_hz / self._factor(ev, t, track.freq_hz)
         f0 = float(np.median(rest))
         # Three quarters of the track, not just half of it: a track that sweeps
         # through a pass of its own is not explained by a flat part of another.
@@ -355,9 +354,7 @@ class Pipeline:
             factors, courses, tols, halves = [], [], [], []
             for tr in tracks:
                 f = float(np.median(tr.freq_hz))
-                sigma_p = float(self.front.sigma_at(f)) / math.sqrt(2.0)
-                factor = windowed_factor(t, best.speed_mps, best.closest_approach_m, best.pass_time_s,
-                                         best.speed_of_sound_mps, sigma_p, self.settings.wind_mps)
+                factor = self._factor(best, t, f)
                 rest = float(np.median(tr.freq_hz / factor[np.clip(tr.frame - lo, 0, t.size - 1)]))
                 tol = FOLLOW_TOL_BINS * self.front.bin_hz_at(f)
                 factors.append(factor)

@@ -53,12 +53,15 @@ References
 from __future__ import annotations
 
 import os
+import sys
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))  # tools/, for benchkit
+from benchkit import THREAD_ENV, cpu_model, markdown_table, replace_between_markers, shown_command  # noqa: E402
+from benchkit import write_scene_wav  # noqa: E402
 
 # Single-threaded numerics everywhere (the workers of the accuracy grid and
 # the timed children). OPENBLAS_CORETYPE / OPENBLAS_L2_SIZE are left alone
 # (only recorded): the machine sets them on some processors on purpose.
-THREAD_ENV = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
-                                     "NUMEXPR_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")}
 if __name__ == "__main__":  # before numpy loads its thread pools; not when imported by the tests
     os.environ.update(THREAD_ENV)
 
@@ -68,13 +71,10 @@ import json  # noqa: E402
 import math  # noqa: E402
 import multiprocessing  # noqa: E402
 import platform  # noqa: E402
-import shlex  # noqa: E402
 import subprocess  # noqa: E402
-import sys  # noqa: E402
 import tempfile  # noqa: E402
 import time  # noqa: E402
 import traceback  # noqa: E402
-import wave  # noqa: E402
 from dataclasses import dataclass  # noqa: E402
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -97,7 +97,6 @@ from passby.simulation import (  # noqa: E402
     emission_time,
     harmonic_tones,
     render,
-    render_blocks,
     speed_of_sound_iso,
 )
 
@@ -806,17 +805,6 @@ def long_scene(duration_s, fs, seed, temperature_c=15.0):
     return scene, truth, 0.02 / noise_rms
 
 
-def write_scene_wav(path, scene, gain):
-    """Render a scene block by block into a 16-bit PCM WAV (stdlib :mod:`wave`)."""
-    with wave.open(path, "wb") as w:
-        w.setnchannels(1)
-        w.setsampwidth(2)
-        w.setframerate(scene.sample_rate)
-        for block in render_blocks(scene, 1 << 16):
-            q = np.clip(np.round(block * gain * 32767.0), -32768, 32767).astype("<i2")
-            w.writeframes(q.tobytes())
-
-
 def _count_found(events, truth):
     found = 0
     for t0, _ in truth:
@@ -895,39 +883,22 @@ def _rel(x):
     return f"{v:.3f} %" if v < 1 else f"{v:.2f} %" if v < 10 else f"{v:.1f} %"
 
 
-def _table(header, rows):
-    lines = ["| " + " | ".join(header) + " |", "|" + "|".join(" --- " for _ in header) + "|"]
-    lines += ["| " + " | ".join(str(c) for c in row) + " |" for row in rows]
-    return "\n".join(lines)
+_table = markdown_table
+
+
+def replace_readme(text, path=README):
+    """Put ``text`` between this benchmark's markers of README; False if they are not both there."""
+    return replace_between_markers(text, path, MARK_BEGIN, MARK_END)
 
 
 def machine_facts():
-    cpu = "unknown"
-    try:
-        with open("/proc/cpuinfo") as f:
-            for line in f:
-                if line.startswith("model name"):
-                    cpu = line.split(":", 1)[1].strip()
-                    break
-    except OSError:
-        pass
+    cpu = cpu_model()
     blas = {k: os.environ.get(k, "unset") for k in ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE")}
     load = os.getloadavg() if hasattr(os, "getloadavg") else (math.nan,) * 3
     return dict(cpu=cpu, cores=os.cpu_count(), python=platform.python_version(), numpy=np.__version__,
                 scipy=scipy.__version__, machine=platform.machine(), system=platform.system(),
                 date=datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"), blas=blas,
                 load=load)
-
-
-def shown_command(argv):
-    """The command as typed, with paths outside the repository cut to their name."""
-    parts = ["python", "tools/bench.py"]
-    for a in argv:
-        if os.path.isabs(a):
-            rel = os.path.relpath(a, ROOT)
-            a = rel if not rel.startswith("..") else os.path.join("...", os.path.basename(a))
-        parts.append(a)
-    return " ".join(shlex.quote(p) for p in parts)
 
 
 def targets(acc, noise, cost, growth):
@@ -980,7 +951,7 @@ def report(cfg, args, facts, main, hard, noise_rows, cost, elapsed):
                  f"OPENBLAS_CORETYPE={facts['blas']['OPENBLAS_CORETYPE']}, "
                  f"OPENBLAS_L2_SIZE={facts['blas']['OPENBLAS_L2_SIZE']}; load average {facts['load'][0]:.2f} "
                  "at the start.  \n"
-                 f"Date: {facts['date']}. Command: `{shown_command(args)}` "
+                 f"Date: {facts['date']}. Command: `{shown_command('tools/bench.py', args)}` "
                  f"(seed {cfg['seed']}, {cfg['jobs']} worker(s), {elapsed / 60:.1f} min).  \n"
                  f"Run: {'QUICK (a small grid: figures are indicative only)' if cfg.get('quick') else 'full'}; "
                  f"{len(main)} + {len(hard)} pass-bys (main + hard grid), {len(noise_rows)} noise-only "
@@ -1197,24 +1168,6 @@ def _case_row(r, err):
             f"{p['closest_m']:.1f}", f"{f:.0f}", f"{p['snr_db']:.1f}", f"{100 * p['wander']:.2f}",
             f"{p['reflection']:.1f}", "yes" if p["interferer"] else "no", f"{p['fs'] / 1000:g}",
             f"{p['temperature_c']:.0f}")
-
-
-def replace_readme(tables, path=README):
-    """Put ``tables`` between the bench markers of README; False if they are not both there."""
-    if not os.path.exists(path):
-        return False
-    with open(path, encoding="utf-8") as f:
-        text = f.read()
-    i, j = text.find(MARK_BEGIN), text.find(MARK_END)
-    if i < 0 or j < 0 or j < i:
-        return False
-    new = text[:i + len(MARK_BEGIN)] + "\n\n" + tables + "\n\n" + text[j:]
-    if new != text:
-        tmp = path + ".tmp"
-        with open(tmp, "w", encoding="utf-8") as f:
-            f.write(new)
-        os.replace(tmp, path)
-    return True
 
 
 # --------------------------------------------------------------------------

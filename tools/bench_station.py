@@ -61,10 +61,13 @@ References
 from __future__ import annotations
 
 import os
+import sys
 
-#: Single-threaded numerics in the timed children (a small board has few cores).
-THREAD_ENV = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
-                                     "NUMEXPR_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")}
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))  # tools/, for benchkit
+from benchkit import THREAD_ENV, cpu_model, markdown_table, replace_between_markers, shown_command  # noqa: E402
+from benchkit import write_scene_wav  # noqa: E402
+
+# Single-threaded numerics in the timed children (a small board has few cores).
 if __name__ == "__main__":  # before numpy starts its thread pools; not when imported by a test
     os.environ.update(THREAD_ENV)
 
@@ -73,14 +76,11 @@ import datetime  # noqa: E402
 import json  # noqa: E402
 import math  # noqa: E402
 import platform  # noqa: E402
-import shlex  # noqa: E402
 import shutil  # noqa: E402
 import sqlite3  # noqa: E402
 import subprocess  # noqa: E402
-import sys  # noqa: E402
 import tempfile  # noqa: E402
 import time  # noqa: E402
-import wave  # noqa: E402
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 if ROOT not in sys.path:
@@ -95,7 +95,6 @@ from passby.simulation import (  # noqa: E402
     Tone,
     Vehicle,
     harmonic_tones,
-    render_blocks,
     speed_of_sound_iso,
 )
 
@@ -297,27 +296,6 @@ def site_scene(duration_s, seed, sample_rate=SAMPLE_RATE, temperature_c=TEMPERAT
                   mic_height_m=1.2, ground_reflection=0.0, noise="road", snr_db=None,
                   noise_level=NOISE_RMS, interferers=interferers, seed=int(seed), clip=True)
     return scene, truth, fans, quiet, fan_hz
-
-
-def write_scene_wav(path, scene, block_frames=1 << 16):
-    """Render ``scene`` block by block into a 16-bit PCM mono WAV (stdlib :mod:`wave`).
-
-    Returns
-    -------
-    dict
-        Frames written, peak absolute sample, samples at full scale.
-    """
-    peak, clipped, frames = 0.0, 0, 0
-    with wave.open(path, "wb") as w:
-        w.setnchannels(1)
-        w.setsampwidth(2)
-        w.setframerate(scene.sample_rate)
-        for block in render_blocks(scene, block_frames):
-            peak = max(peak, float(np.max(np.abs(block))))
-            clipped += int(np.count_nonzero(np.abs(block) >= 1.0))
-            w.writeframes(np.clip(np.rint(block * 32767.0), -32768, 32767).astype("<i2").tobytes())
-            frames += block.size
-    return dict(frames=frames, peak=peak, clipped=clipped)
 
 
 # --------------------------------------------------------------------------
@@ -841,16 +819,16 @@ def source_state():
     return dict(digest=h.hexdigest()[:12], commit=commit, dirty=dirty)
 
 
+_table = markdown_table
+
+
+def replace_readme(text, path=README):
+    """Put ``text`` between this benchmark's markers of README; False if they are not both there."""
+    return replace_between_markers(text, path, MARK_BEGIN, MARK_END)
+
+
 def machine_facts():
-    cpu = "unknown"
-    try:
-        with open("/proc/cpuinfo") as f:
-            for line in f:
-                if line.startswith("model name"):
-                    cpu = line.split(":", 1)[1].strip()
-                    break
-    except OSError:
-        pass
+    cpu = cpu_model()
     try:
         import matplotlib
         mpl = matplotlib.__version__
@@ -862,17 +840,6 @@ def machine_facts():
                 numpy=np.__version__, scipy=scipy.__version__, matplotlib=mpl, sqlite=sqlite3.sqlite_version,
                 passby=__version__, load=_loadavg(),
                 date=datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"))
-
-
-def shown_command(argv):
-    """The command as typed, with paths outside the repository cut to their file name."""
-    parts = ["python", "tools/bench_station.py"]
-    for a in argv:
-        if os.path.isabs(a):
-            rel = os.path.relpath(a, ROOT)
-            a = rel if not rel.startswith("..") else os.path.join("...", os.path.basename(a))
-        parts.append(a)
-    return " ".join(shlex.quote(p) for p in parts)
 
 
 # --------------------------------------------------------------------------
@@ -893,12 +860,6 @@ def _g(x):
 
 def _ok(flag):
     return "n/a" if flag is None else ("pass" if flag else "FAIL")
-
-
-def _table(header, rows):
-    lines = ["| " + " | ".join(header) + " |", "|" + "|".join(" --- " for _ in header) + "|"]
-    lines += ["| " + " | ".join(str(c) for c in row) + " |" for row in rows]
-    return "\n".join(lines)
 
 
 def _source_text(R):
@@ -1149,24 +1110,6 @@ def results_text(R, tbl):
     return "\n".join(head) + tbl + "\n\n" + details(R) + "\n"
 
 
-def replace_readme(text, path=README):
-    """Put ``text`` between the station-bench markers of README; False if they are not both there."""
-    if not os.path.exists(path):
-        return False
-    with open(path, encoding="utf-8") as f:
-        old = f.read()
-    i, j = old.find(MARK_BEGIN), old.find(MARK_END)
-    if i < 0 or j < 0 or j < i:
-        return False
-    new = old[:i + len(MARK_BEGIN)] + "\n\n" + text + "\n\n" + old[j:]
-    if new != old:
-        tmp = path + ".tmp"
-        with open(tmp, "w", encoding="utf-8") as f:
-            f.write(new)
-        os.replace(tmp, path)
-    return True
-
-
 # --------------------------------------------------------------------------
 # The run
 
@@ -1223,7 +1166,7 @@ def main(argv=None):
     tmp = args.keep or tempfile.mkdtemp(prefix="passby-bench-station-")
     os.makedirs(tmp, exist_ok=True)
     try:
-        R = dict(cfg=cfg, seed=args.seed, command=shown_command(argv), machine=machine_facts(),
+        R = dict(cfg=cfg, seed=args.seed, command=shown_command("tools/bench_station.py", argv), machine=machine_facts(),
                  source_start=source_state())
         log(f"{cfg['name']} run, children pinned to CPU {timed_cpu()}")
         R["baseline"] = measure_baseline()

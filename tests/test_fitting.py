@@ -66,3 +66,16 @@ def test_error_inflation_of_a_moving_average():
     rng = np.random.default_rng(4)
     e = np.convolve(rng.standard_normal(40000), np.ones(5) / 5, mode="valid")
     assert error_inflation(e, np.arange(e.size, dtype=float)) == pytest.approx(5.0, rel=0.15)
+
+
+def test_error_inflation_sees_a_slow_error_under_fast_noise():
+    # White noise (s.d. 1) plus an error constant over each second (s.d. 0.2), 100 frames
+    # a second: the variance of the sum is N (1 + 100 * 0.04), against N (1 + 0.04) for
+    # independent errors, a ratio of 5 / 1.04 (variance of a sum of correlated terms,
+    # common practice, no source; the batch means of Flegal & Jones 2010 estimate it)
+    rng = np.random.default_rng(5)
+    n_blocks, per = 60, 100
+    slow = np.repeat(0.2 * rng.standard_normal(n_blocks), per)
+    e = rng.standard_normal(n_blocks * per) + slow
+    t = np.arange(e.size) * 0.01
+    assert error_inflation(e, t) == pytest.approx(5.0 / 1.04, rel=0.35)

@@ -5,11 +5,12 @@ microphone's (or a replay's). Nothing here knows where the samples came
 from, so the same audio gives the same numbers either way::
 
     samples -> Decimator -> FrameAnalyser -> Tracker -> SourceGrouper
-            -> fit_pass (per source) -> follow_course -> fit_pass -> PassEvent
+            -> fit_pass (per source) -> course_spectrograms -> follow_in_spectrogram
+            -> fit_pass -> PassEvent
 
 Every stage keeps only the state it needs (the decimation filter's
 history, about a minute of per-bin background summaries, the last 40 s of
-spectra for following tones into the noise, the open tracks and the ended
+decimated samples for following tones into the noise, the open tracks and the ended
 tracks awaiting their group), so memory does not grow with the length of
 the stream.
 """
@@ -25,10 +26,11 @@ import numpy as np
 
 from passby.events import PassEvent
 from passby.fitting import SPEED_BOUND_C, fit_pass, track_data, windowed_factor
-from passby.physics import speed_of_sound
+from passby.dechirp import course_spectrograms, follow_in_spectrogram
+from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
-from passby.tracking import SourceGrouper, Tracker, fall_ratio, follow_course
+from passby.tracking import SourceGrouper, Tracker, fall_ratio
 
 log = logging.getLogger(__name__)
 
@@ -57,15 +59,20 @@ DISAGREE_REL = 0.08
 #: says nothing about a vehicle (a short fragment, a steady line's wobble):
 #: it is not reported at all.
 MAX_REJECTED_REL_STD = 0.3
-#: Following a fitted source's tones through faint peaks: how far before the
-#: tracks' start to look (s), the window over which at least FOLLOW_RATE of
-#: the frames must hold a peak near the course (s), and how far from the
-#: fitted course a peak may lie (bins).
-FOLLOW_REACH_S, FOLLOW_WINDOW_S, FOLLOW_RATE, FOLLOW_TOL_BINS = 20.0, 1.0, 0.3, 1.5
+#: Following a fitted source's tones in narrow-band spectra along the fitted
+#: course (passby.dechirp): how far before the tracks' start to look (s);
+#: the s.d. of the narrow-band window (s; longer smears a wandering pitch);
+#: how far from the course the band reaches, FOLLOW_TOL_BINS tracking bins
+#: plus FOLLOW_BAND_REL of the rest frequency (the fit's error and the
+#: pitch wander); the least mean whitened power of the path over its last
+#: second for following to go on (noise alone gives about 3, measured); and
+#: how far a steady line must stand above the background's local floor (dB)
+#: to be left out of the narrow-band spectra.
+FOLLOW_REACH_S, FOLLOW_SIGMA_S = 20.0, 0.15
+FOLLOW_TOL_BINS, FOLLOW_BAND_REL = 1.5, 0.012
+FOLLOW_MIN_POWER, FOLLOW_LINE_DB = 4.0, 3.0
 #: A good event whose speed is this certain (m/s) is not followed further.
 FOLLOW_ABOVE_STD_MPS = 0.08
-#: How far (relative) a tone's rest frequency may wander while followed.
-FOLLOW_WANDER = 0.02
 #: A track joins a vehicle found as a new tone when its rest frequency is
 #: this far (relative) from every tone the vehicle has.
 ADOPT_REL = 0.01
@@ -330,10 +337,14 @@ class Pipeline:
         """The event refitted after following its tones along the fitted course.
 
         The tracks end where their peaks sink below the tracking threshold,
-        but the fitted curve says where each tone goes on: its faint peaks
-        are followed outwards (:func:`~passby.tracking.follow_course`) as far
-        as the kept frames reach, and the source is fitted again on the
-        longer tracks, whose plateaus pin the speed down better. The refit
+        but the fitted curve says where each tone goes on. The kept
+        samples are demodulated along each tone's course and analysed in
+        narrow bands (:func:`~passby.dechirp.course_spectrograms`), where
+        the tone stands about 10 dB higher above the noise; each track is
+        extended along the best path through them
+        (:func:`~passby.dechirp.follow_in_spectrogram`) as far as the kept
+        samples reach, and the source is fitted again on the longer
+        tracks, whose plateaus pin the speed down better. The refit
         replaces the event unless it is rejected when the first fit was not.
         """
         tracks = self.tracks_of.get(id(ev))
@@ -348,22 +359,20 @@ class Pipeline:
         if hi <= lo:
             return ev
         t = tb.frame_time(np.arange(lo, hi + 1))
-        window = max(1, int(round(FOLLOW_WINDOW_S / tb.hop_s)))
+        y, fs, t_y0 = self.front.kept_samples(float(t[0]), float(t[-1]))
         best = ev
         for _ in range(FOLLOW_ROUNDS):
-            factors, courses, tols, halves = [], [], [], []
+            rests, halves = [], []
             for tr in tracks:
                 f = float(np.median(tr.freq_hz))
                 factor = self._factor(best, t, f)
                 rest = float(np.median(tr.freq_hz / factor[np.clip(tr.frame - lo, 0, t.size - 1)]))
-                tol = FOLLOW_TOL_BINS * self.front.bin_hz_at(f)
-                factors.append(factor)
-                courses.append(rest * factor)
-                tols.append(tol)
-                halves.append(tol + FOLLOW_WANDER * rest)
-            faint = self.front.faint_near(lo, np.array(courses), np.array(halves))
-            longer = [follow_course(tr, fp, factor, lo, tol, window, FOLLOW_RATE)
-                      for tr, fp, factor, tol in zip(tracks, faint, factors, tols)]
+                rests.append(rest)
+                halves.append(FOLLOW_TOL_BINS * self.front.bin_hz_at(f) + FOLLOW_BAND_REL * rest)
+            raw = doppler_factor(t, best.speed_mps, best.closest_approach_m, best.pass_time_s,
+                                 best.speed_of_sound_mps, self.settings.wind_mps)
+            specs = course_spectrograms(y, fs, t_y0, t, raw, rests, halves, FOLLOW_SIGMA_S, first_frame=lo)
+            longer = [self._follow(tr, sp, rest) for tr, sp, rest in zip(tracks, specs, rests)]
             if sum(t.frame.size for t in longer) == sum(t.frame.size for t in tracks):
                 break
             start = np.r_[best.speed_mps, best.closest_approach_m, best.pass_time_s, best.tones_hz]
@@ -372,6 +381,16 @@ class Pipeline:
                 break
             best = new
         return best
+
+    def _follow(self, track, spec, rest_hz):
+        """One track extended in its course spectrogram, steady lines left out."""
+        if spec is None:
+            return track
+        heard = spec.course_hz[:, None] + spec.offset_hz[None, :]
+        masked = self.front.line_excess(spec.frame, heard) > FOLLOW_LINE_DB
+        # Levels to the scale of the tracking band's (its window's sum).
+        scale_db = 20.0 * math.log10(self.front.window_sum(rest_hz))
+        return follow_in_spectrogram(track, spec, scale_db, masked, min_power=FOLLOW_MIN_POWER)
 
     def _loudest_at_pass(self, track, fit) -> bool:
         """Whether the tone is louder around the pass than well before or after it.

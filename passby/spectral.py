@@ -36,6 +36,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft
+import scipy.ndimage
 
 
 def decimation_factor(sample_rate: int, f_max_hz: float) -> int:
@@ -472,10 +473,9 @@ class FrameAnalyser:
     percentile : float
         Low percentile of the chunk medians: a line present less than
         ``100 - percentile`` percent of the window stands out.
-    faint_db : float
-        Threshold of the faint peaks of :meth:`faint_near`.
     keep_frames : int
-        How many of the last frames' spectra are kept for :meth:`faint_near`.
+        For how many of the last frames the background is kept, for
+        :meth:`line_excess`.
 
     Notes
     -----
@@ -489,14 +489,13 @@ class FrameAnalyser:
 
     def __init__(self, geometry: FrameGeometry, threshold_db: float, chunk_frames: int = 50,
                  past_chunks: int = 120, future_chunks: int = 8, min_chunks: int = 60,
-                 percentile: float = 10.0, faint_db: float = 5.0, keep_frames: int = 0):
+                 percentile: float = 10.0, keep_frames: int = 0):
         self.g = geometry
         self.threshold_db = float(threshold_db)
-        self.faint_db = min(float(faint_db), self.threshold_db)
         self.keep_frames = int(keep_frames)
-        # Ring buffers of the last keep_frames spectra (frame p in row
-        # p % keep_frames), their frame medians and their chunks' backgrounds.
-        self._ring = self._ring_med = self._ring_bg = self._ring_slot = None
+        # The backgrounds of the chunks of the last keep_frames frames, and
+        # which of them belongs to each frame (frame p in row p % keep_frames).
+        self._ring_bg = self._ring_slot = None
         self._ring_last = -1
         self.window = gaussian_window(geometry)
         self.chunk_frames = int(chunk_frames)
@@ -592,104 +591,54 @@ class FrameAnalyser:
             out.append(pick_peaks(self._chunks[j], self._bg, first, self.g, self.threshold_db,
                                   levels=levels))
             if self.keep_frames > 0:
-                self._keep(j, first, self._chunks[j], self._bg, levels)
+                self._keep(j, first, self._chunks[j].shape[0], self._bg)
             self._done += 1
             del self._chunks[j]
             for k in [k for k in self._medians if k < self._done - self.past - self.BG_EVERY]:
                 del self._medians[k]
         return out
 
-    def _keep(self, j: int, first: int, p_db: np.ndarray, bg: np.ndarray, levels: np.ndarray):
-        """Keep a chunk's spectra, frame levels and background in the rings."""
+    def _keep(self, j: int, first: int, n_rows: int, bg: np.ndarray):
+        """Keep a chunk's background for its frames in the ring."""
         k = self.keep_frames
-        if self._ring is None:
-            n_slots = k // self.chunk_frames + 2
-            # Half precision: 0.06 dB steps at most for levels within 128 dB
-            # of full scale, a hundredth of a bin in the interpolated frequency.
-            self._ring = np.zeros((k, p_db.shape[1]), dtype=np.float16)
-            self._ring_med = np.zeros(k, dtype=np.float32)
+        if self._ring_bg is None:
+            self._ring_bg = np.zeros((k // self.chunk_frames + 2, bg.size), dtype=np.float32)
             self._ring_slot = np.zeros(k, dtype=np.int32)
-            self._ring_bg = np.zeros((n_slots, p_db.shape[1]), dtype=np.float32)
-        rows = (first + np.arange(p_db.shape[0])) % k
-        self._ring[rows] = p_db
-        self._ring_med[rows] = levels
         slot = j % self._ring_bg.shape[0]
         self._ring_bg[slot] = bg
-        self._ring_slot[rows] = slot
-        self._ring_last = first + p_db.shape[0] - 1
+        self._ring_slot[(first + np.arange(n_rows)) % k] = slot
+        self._ring_last = first + n_rows - 1
 
     @property
     def kept_from(self) -> int:
-        """First frame whose spectrum is still kept (-1 before any)."""
-        if self._ring is None:
+        """First frame whose background is still kept (-1 before any)."""
+        if self._ring_bg is None:
             return -1
         return max(0, self._ring_last - self.keep_frames + 1)
 
-    def faint_near(self, frame_lo: int, course_hz: np.ndarray, half_width_hz: float) -> list:
-        """Faint peaks near given courses, from the kept spectra.
+    def line_excess(self, frames: np.ndarray, freq_hz: np.ndarray, floor_bins: int = 8) -> np.ndarray:
+        """How far the background stands above its local floor, dB, at kept frames.
 
-        For frames ``frame_lo .. frame_lo + n - 1`` (those still kept), the
-        local maxima of the raw spectrum within ``half_width_hz`` of each
-        course that stand ``faint_db`` above the whitened background (as in
-        :func:`pick_peaks`), with their sub-bin frequency (parabola in dB,
-        :func:`interpolate_peaks`) and height. Only the bins near the
-        courses are looked at, so following a tone costs little.
-
-        Parameters
-        ----------
-        frame_lo : int
-        course_hz : ndarray, shape (k, n)
-            Heard frequency of each of ``k`` courses in each frame.
-        half_width_hz : float or ndarray of shape (k,)
-
-        Returns
-        -------
-        list of Peaks
-            One per course (empty where the band or the kept frames do not
-            reach).
+        A steady line (a fan, a transformer, mains hum) is part of the
+        background; its height above the median of the background over
+        ``2 floor_bins + 1`` bins around it says where it lies. ``frames``
+        (shape (n,)) and ``freq_hz`` (shape (n, m)); 0 outside the band or
+        the kept frames.
         """
+        freq_hz = np.atleast_2d(np.asarray(freq_hz, dtype=float))
+        out = np.zeros(freq_hz.shape)
+        if self._ring_bg is None:
+            return out
         g = self.g
-        course_hz = np.atleast_2d(np.asarray(course_hz, dtype=float))
-        n_course, n = course_hz.shape
-        empty = Peaks(np.empty(0, int), np.empty(0), np.empty(0), frame_lo, 0, np.empty(0))
-        lo = max(frame_lo, self._ring_last - self.keep_frames + 1)
-        hi = min(frame_lo + n - 1, self._ring_last)
-        if self._ring is None or lo > hi:
-            return [empty] * n_course
-        frames = np.arange(lo, hi + 1)
-        r = (frames % self.keep_frames)[:, None]
-        width = self._ring.shape[1]
-        half = np.broadcast_to(np.asarray(half_width_hz, dtype=float), (n_course,))
-        out = []
-        for i in range(n_course):    # one course at a time: small temporaries
-            w = int(math.ceil(float(half[i]) / g.bin_hz)) + 1
-            course = course_hz[i, lo - frame_lo: hi - frame_lo + 1]
-            centre = np.rint(course / g.bin_hz).astype(np.int64) - (g.k_lo - 1)
-            cols = centre[:, None] + np.arange(-w, w + 1)              # (frames, 2w + 1)
-            ok = (cols >= 1) & (cols <= width - 2)
-            cols = np.clip(cols, 1, width - 2)
-            here = self._ring[r, cols].astype(np.float32)
-            left = self._ring[r, cols - 1].astype(np.float32)
-            right = self._ring[r, cols + 1].astype(np.float32)
-            white = here - self._ring_bg[self._ring_slot[r], cols] - self._ring_med[r]
-            near = np.abs((cols + (g.k_lo - 1)) * g.bin_hz - course[:, None]) <= half[i] + g.bin_hz
-            top = ok & near & (here > left) & (here >= right) & (white >= self.faint_db)
-            fi, _ = np.nonzero(top)
-            if fi.size == 0:
-                out.append(empty)
-                continue
-            c = cols[top]
-            # Clipping at the band's edges can repeat a column: once each.
-            key = fi.astype(np.int64) * width + c
-            _, uniq = np.unique(key, return_index=True)
-            a, b, cc = left[top][uniq], here[top][uniq], right[top][uniq]
-            den = a - 2.0 * b + cc
-            safe = np.where(den < -1e-9, den, -1e-9)
-            delta = np.clip(0.5 * (a - cc) / safe, -0.5, 0.5)
-            level = b - 0.25 * (a - cc) * delta
-            freq = (g.k_lo - 1 + c[uniq] + delta) * g.bin_hz
-            out.append(Peaks(frames[fi[uniq]], freq.astype(float), white[top][uniq].astype(float),
-                             lo, hi - lo + 1, level.astype(float)))
+        floor = scipy.ndimage.median_filter(self._ring_bg, size=(1, 2 * floor_bins + 1), mode="nearest")
+        frames = np.asarray(frames, dtype=np.int64)
+        kept = (frames >= self.kept_from) & (frames <= self._ring_last)
+        slot = self._ring_slot[frames % self.keep_frames][:, None]
+        col = np.rint(freq_hz / g.bin_hz).astype(np.int64) - (g.k_lo - 1)
+        inside = kept[:, None] & (col >= 0) & (col < self._ring_bg.shape[1])
+        col = np.clip(col, 0, self._ring_bg.shape[1] - 1)
+        ex = self._ring_bg[slot, col] - floor[slot, col]
+        out[inside] = ex[inside]
         return out
 
 
@@ -721,10 +670,9 @@ class FrontEnd:
     sample_rate : int
     f_min_hz, f_max_hz : float
     threshold_db : float
-    faint_db : float
-        Threshold of the faint peaks of :meth:`faint_near`.
-    faint_keep_s : float
-        How long the spectra behind them are kept, seconds of frames.
+    keep_s : float
+        How long the decimated samples (:meth:`kept_samples`) and the
+        backgrounds (:meth:`line_excess`) are kept, seconds.
 
     Attributes
     ----------
@@ -738,7 +686,7 @@ class FrontEnd:
     LOW_RATE_HZ = 2000.0
 
     def __init__(self, sample_rate: int, f_min_hz: float, f_max_hz: float, threshold_db: float,
-                 faint_db: float = 5.0, faint_keep_s: float = 40.0):
+                 keep_s: float = 40.0):
         q = decimation_factor(sample_rate, f_max_hz)
         fs_high = sample_rate / q
         hop = max(1, int(round(0.01 * fs_high)))
@@ -768,12 +716,17 @@ class FrontEnd:
             start = m * g.hop + delay - (g.n_window - 1) // 2
             g = FrameGeometry(g.fs, g.sigma_s, g.n_window, g.n_fft, g.hop, g.k_lo, g.k_hi, start,
                               m * g.hop / g.fs)
-            keep = int(round(faint_keep_s * g.fs / g.hop))
-            self.bands.append((name, dec, FrameAnalyser(g, threshold_db, faint_db=faint_db, keep_frames=keep)))
+            keep = int(round(keep_s * g.fs / g.hop))
+            self.bands.append((name, dec, FrameAnalyser(g, threshold_db, keep_frames=keep)))
         self.timebase = Timebase(hop / fs_high, m * hop / fs_high)
         bins = [fa.g.bin_hz for _, _, fa in self.bands]
         self._bin_low, self._bin_high = bins[0], bins[-1]
         self._queues = [[] for _ in self.bands]
+        # The decimated samples of the last keep_s seconds (float32),
+        # for narrow-band spectra along a fitted course (passby.dechirp).
+        self.fs_high = float(fs_high)
+        self._raw = np.zeros(int(math.ceil(keep_s * fs_high)) + hop, dtype=np.float32)
+        self._raw_n = 0          # decimated samples written so far
 
     @property
     def geometries(self):
@@ -799,6 +752,7 @@ class FrontEnd:
         return self._run(self.decimator.flush(), final=True)
 
     def _run(self, y: np.ndarray, final: bool) -> list:
+        self._keep_raw(y)
         for i, (_, dec, fa) in enumerate(self.bands):
             z = y if dec is None else (np.concatenate([dec.push(y), dec.flush()]) if final else dec.push(y))
             self._queues[i] += fa.push(z)
@@ -817,23 +771,47 @@ class FrontEnd:
 
     @property
     def kept_from(self) -> int:
-        """First frame whose spectra every band still keeps."""
+        """First frame whose background every band still keeps."""
         return max(fa.kept_from for _, _, fa in self.bands)
 
-    def faint_near(self, frame_lo: int, course_hz: np.ndarray, half_width_hz) -> list:
-        """Faint peaks near courses (see :meth:`FrameAnalyser.faint_near`), both bands.
+    def _keep_raw(self, y: np.ndarray):
+        n = self._raw.size
+        total = self._raw_n + y.size
+        y = y[-n:]
+        self._raw[(total - y.size + np.arange(y.size)) % n] = y
+        self._raw_n = total
 
-        Each band gives the peaks on its own side of the split; one
-        :class:`Peaks` per course.
+    def kept_samples(self, t_lo: float, t_hi: float):
+        """The kept decimated samples heard from ``t_lo`` to ``t_hi`` (s).
+
+        Returns
+        -------
+        (y, fs, t_y0)
+            The samples (float32), their rate, and the time of ``y[0]``;
+            the decimation delay is taken off, so sample times match the
+            frame times of :attr:`timebase`. Only what is still kept.
         """
-        per_band = [[self._own(name, p) for p in fa.faint_near(frame_lo, course_hz, half_width_hz)]
-                    for name, _, fa in self.bands]
-        out = []
-        for parts in zip(*per_band):
-            parts = [p for p in parts if p.frame.size]
-            out.append(merge_peaks(parts) if len(parts) > 1 else parts[0] if parts else
-                       Peaks(np.empty(0, int), np.empty(0), np.empty(0), frame_lo, 0, np.empty(0)))
-        return out
+        delay = self.decimator.delay_out
+        j_lo = max(int(math.floor(t_lo * self.fs_high)) + delay, self._raw_n - self._raw.size, 0)
+        j_hi = min(int(math.ceil(t_hi * self.fs_high)) + delay + 1, self._raw_n)
+        if j_hi <= j_lo:
+            return np.empty(0, dtype=np.float32), self.fs_high, 0.0
+        y = self._raw[np.arange(j_lo, j_hi) % self._raw.size]
+        return y, self.fs_high, (j_lo - delay) / self.fs_high
+
+    def line_excess(self, frames: np.ndarray, freq_hz: np.ndarray) -> np.ndarray:
+        """Height of steady lines in the background (see :meth:`FrameAnalyser.line_excess`), both bands."""
+        freq_hz = np.atleast_2d(np.asarray(freq_hz, dtype=float))
+        parts = [fa.line_excess(frames, freq_hz) for _, _, fa in self.bands]
+        if len(parts) == 1:
+            return parts[0]
+        return np.where(freq_hz < self.split_hz, parts[0], parts[1])
+
+    def window_sum(self, f) -> float:
+        """Sum of the analysis window of the band that analyses ``f`` (its level scale)."""
+        g = self.geometries
+        band = g[0] if (len(g) == 1 or f < self.split_hz) else g[1]
+        return float(gaussian_window(band).sum(dtype=np.float64))
 
     def _own(self, name: str, peaks: Peaks) -> Peaks:
         """The peaks of band ``name`` on its own side of the split (the bins overlap)."""

@@ -26,13 +26,14 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.fft
 import scipy.signal
 
 from passby.spectral import interpolate_peaks
 from passby.tracking import Track
 
-#: Frames transformed together (bounds the temporaries).
-_CHUNK_FRAMES = 512
+#: Frames transformed together, and sub-blocks demodulated together (bound the temporaries).
+_CHUNK_FRAMES, _CHUNK_SUBBLOCKS = 512, 2048
 
 
 def _antialias(sub: int) -> np.ndarray:
@@ -206,13 +207,19 @@ def course_spectrograms(y: np.ndarray, fs: float, t_y0: float, frame_t: np.ndarr
     p_lo, p_hi = int(good[0]), int(good[-1])
     j0 = e0 + (p_lo * r + i_lo) * L
     seg = y[j0: e0 + (p_hi * r + i_lo + K) * L]
-    ts = t_y0 + (j0 + np.arange(seg.size)) / fs
-    F = np.interp(ts, frame_t, integrated_factor(frame_t, factor))
+    F_frames = integrated_factor(frame_t, factor)
     rows = np.arange(p_lo, p_hi + 1)
+    step = Ls * _CHUNK_SUBBLOCKS          # samples demodulated at a time (bounds the temporaries)
     out = []
     for k in range(rest.size):
-        ph = np.mod(rest[k] * F, 1.0).astype(np.float32) * np.float32(2.0 * np.pi)
-        zs = (seg * np.cos(ph) - 1j * (seg * np.sin(ph))).reshape(-1, Ls).mean(axis=1)
+        zs = np.empty(seg.size // Ls, dtype=np.complex128)
+        for a in range(0, seg.size, step):
+            part = seg[a: a + step]
+            ts = t_y0 + (j0 + a + np.arange(part.size)) / fs
+            ph = np.mod(rest[k] * np.interp(ts, frame_t, F_frames), 1.0).astype(np.float32)
+            ph *= np.float32(2.0 * np.pi)
+            z = (part * np.cos(ph)).reshape(-1, Ls).mean(axis=1) - 1j * (part * np.sin(ph)).reshape(-1, Ls).mean(axis=1)
+            zs[a // Ls: a // Ls + z.size] = z
         if sub > 1:
             # Anti-alias: a steady line far from the course must not fold
             # into the band when the sub-blocks are decimated to blocks.
@@ -224,7 +231,7 @@ def course_spectrograms(y: np.ndarray, fs: float, t_y0: float, frame_t: np.ndarr
         view = np.lib.stride_tricks.sliding_window_view(zb, K)
         for c0 in range(0, rows.size, _CHUNK_FRAMES):
             fr = rows[c0: c0 + _CHUNK_FRAMES]
-            spec = np.fft.fft(view[(fr - p_lo) * r] * w, n_fft, axis=1)[:, cols % n_fft]
+            spec = scipy.fft.fft(view[(fr - p_lo) * r] * w, n_fft, axis=1)[:, cols % n_fft]
             p_db[c0: c0 + fr.size] = 10.0 * np.log10(spec.real ** 2 + spec.imag ** 2 + 1e-30)
         out.append(CourseSpectrogram(first_frame + rows, rest[k] * factor[rows], cols * fb / n_fft,
                                      p_db, Ls / fs))

@@ -76,6 +76,9 @@ FOLLOW_ABOVE_STD_MPS = 0.08
 #: A track joins a vehicle found as a new tone when its rest frequency is
 #: this far (relative) from every tone the vehicle has.
 ADOPT_REL = 0.01
+#: The tracks behind at most TRACKS_KEPT events are kept (for refits and
+#: figures), and none that ended more than TRACKS_KEPT_S (s) ago.
+TRACKS_KEPT, TRACKS_KEPT_S = 32, 60.0
 #: Rounds of following and refitting (each follows the last fit's course).
 FOLLOW_ROUNDS = 1
 
@@ -124,7 +127,7 @@ class Pipeline:
             self._level = LevelMeter(self.sample_rate, offset_db=s.level_offset_db)
             self._level_step = self._level.step_samples
             self._level_count = 0
-        #: The tracks behind each event, for figures (kept for the last events).
+        #: The tracks behind each of the last events (see TRACKS_KEPT), for refits and figures.
         self.tracks_of = {}
 
     @property
@@ -329,8 +332,16 @@ class Pipeline:
             dropped_blocks=self._dropped(start_s, end_s),
         )
         self.tracks_of[id(ev)] = tracks
-        while len(self.tracks_of) > 32:
-            self.tracks_of.pop(next(iter(self.tracks_of)))
+        # Keep the tracks of the last events only: at most TRACKS_KEPT of
+        # them, none that ended more than TRACKS_KEPT_S ago (followed tracks
+        # are long; memory must not grow with the stream).
+        horizon = self.tracker.frame - int(TRACKS_KEPT_S / self.timebase.hop_s)
+        while self.tracks_of:
+            oldest = next(iter(self.tracks_of))
+            kept = self.tracks_of[oldest]
+            if len(self.tracks_of) <= TRACKS_KEPT and kept and max(t.end for t in kept) >= horizon:
+                break
+            self.tracks_of.pop(oldest)
         return ev
 
     def _followed(self, ev: PassEvent) -> PassEvent:
@@ -371,8 +382,10 @@ class Pipeline:
                 halves.append(FOLLOW_TOL_BINS * self.front.bin_hz_at(f) + FOLLOW_BAND_REL * rest)
             raw = doppler_factor(t, best.speed_mps, best.closest_approach_m, best.pass_time_s,
                                  best.speed_of_sound_mps, self.settings.wind_mps)
-            specs = course_spectrograms(y, fs, t_y0, t, raw, rests, halves, FOLLOW_SIGMA_S, first_frame=lo)
-            longer = [self._follow(tr, sp, rest) for tr, sp, rest in zip(tracks, specs, rests)]
+            # One tone at a time: one narrow-band spectrogram in memory.
+            longer = [self._follow(tr, course_spectrograms(y, fs, t_y0, t, raw, [rest], [half], FOLLOW_SIGMA_S,
+                                                           first_frame=lo)[0], rest)
+                      for tr, rest, half in zip(tracks, rests, halves)]
             if sum(t.frame.size for t in longer) == sum(t.frame.size for t in tracks):
                 break
             start = np.r_[best.speed_mps, best.closest_approach_m, best.pass_time_s, best.tones_hz]
@@ -386,8 +399,11 @@ class Pipeline:
         """One track extended in its course spectrogram, steady lines left out."""
         if spec is None:
             return track
-        heard = spec.course_hz[:, None] + spec.offset_hz[None, :]
-        masked = self.front.line_excess(spec.frame, heard) > FOLLOW_LINE_DB
+        # The background changes slowly: judged every 5th frame (less memory).
+        sub = slice(None, None, 5)
+        heard = spec.course_hz[sub, None] + spec.offset_hz[None, :]
+        masked = np.repeat(self.front.line_excess(spec.frame[sub], heard) > FOLLOW_LINE_DB, 5,
+                           axis=0)[:spec.frame.size]
         # Levels to the scale of the tracking band's (its window's sum).
         scale_db = 20.0 * math.log10(self.front.window_sum(rest_hz))
         return follow_in_spectrogram(track, spec, scale_db, masked, min_power=FOLLOW_MIN_POWER)

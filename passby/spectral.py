@@ -626,7 +626,7 @@ class FrameAnalyser:
         the kept frames.
         """
         freq_hz = np.atleast_2d(np.asarray(freq_hz, dtype=float))
-        out = np.zeros(freq_hz.shape)
+        out = np.zeros(freq_hz.shape, dtype=np.float32)
         if self._ring_bg is None:
             return out
         g = self.g
@@ -725,7 +725,10 @@ class FrontEnd:
         # The decimated samples of the last keep_s seconds (float32),
         # for narrow-band spectra along a fitted course (passby.dechirp).
         self.fs_high = float(fs_high)
-        self._raw = np.zeros(int(math.ceil(keep_s * fs_high)) + hop, dtype=np.float32)
+        # Each sample is written twice, at i and i + n (n the ring's length),
+        # so that any n consecutive samples are one slice: no copy to read.
+        self._raw_len = int(math.ceil(keep_s * fs_high)) + hop
+        self._raw = np.zeros(2 * self._raw_len, dtype=np.float32)
         self._raw_n = 0          # decimated samples written so far
 
     @property
@@ -775,10 +778,12 @@ class FrontEnd:
         return max(fa.kept_from for _, _, fa in self.bands)
 
     def _keep_raw(self, y: np.ndarray):
-        n = self._raw.size
+        n = self._raw_len
         total = self._raw_n + y.size
         y = y[-n:]
-        self._raw[(total - y.size + np.arange(y.size)) % n] = y
+        at = (total - y.size + np.arange(y.size)) % n
+        self._raw[at] = y
+        self._raw[at + n] = y
         self._raw_n = total
 
     def kept_samples(self, t_lo: float, t_hi: float):
@@ -787,17 +792,19 @@ class FrontEnd:
         Returns
         -------
         (y, fs, t_y0)
-            The samples (float32), their rate, and the time of ``y[0]``;
+            The samples (float32, a read-only view: valid until the next
+            block is pushed), their rate, and the time of ``y[0]``;
             the decimation delay is taken off, so sample times match the
             frame times of :attr:`timebase`. Only what is still kept.
         """
         delay = self.decimator.delay_out
-        j_lo = max(int(math.floor(t_lo * self.fs_high)) + delay, self._raw_n - self._raw.size, 0)
+        n = self._raw_len
+        j_lo = max(int(math.floor(t_lo * self.fs_high)) + delay, self._raw_n - n, 0)
         j_hi = min(int(math.ceil(t_hi * self.fs_high)) + delay + 1, self._raw_n)
         if j_hi <= j_lo:
             return np.empty(0, dtype=np.float32), self.fs_high, 0.0
-        y = self._raw[np.arange(j_lo, j_hi) % self._raw.size]
-        return y, self.fs_high, (j_lo - delay) / self.fs_high
+        a = j_lo % n
+        return self._raw[a: a + (j_hi - j_lo)], self.fs_high, (j_lo - delay) / self.fs_high
 
     def line_excess(self, frames: np.ndarray, freq_hz: np.ndarray) -> np.ndarray:
         """Height of steady lines in the background (see :meth:`FrameAnalyser.line_excess`), both bands."""

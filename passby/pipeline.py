@@ -357,10 +357,13 @@ class Pipeline:
         samples reach, and the source is fitted again on the longer
         tracks, whose plateaus pin the speed down better. The refit
         replaces the event unless it is rejected when the first fit was not.
+        A rejected event is not followed: its course may be anything (a
+        fan's wobble, two sources mixed), and noise followed along it could
+        make it look usable.
         """
         tracks = self.tracks_of.get(id(ev))
-        if not tracks or not math.isfinite(ev.speed_mps):
-            return ev
+        if not tracks or not math.isfinite(ev.speed_mps) or ev.quality == "rejected":
+            return ev   # a rejected fit's course is no course to follow
         if ev.quality == "good" and ev.speed_std_mps <= FOLLOW_ABOVE_STD_MPS and len(tracks) == len(ev.tones_hz):
             return ev   # measured well already: nothing to gain
         tb = self.timebase

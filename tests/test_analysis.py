@@ -172,7 +172,7 @@ def test_hard_conditions(seed):
 @pytest.mark.parametrize("seed", [3, 4])
 def test_following_hears_a_faint_pass_longer(seed, monkeypatch):
     # SNR -5 dB at 9 m: the 12 dB tracks cover a few seconds around the pass;
-    # following the fitted course through the faint peaks reaches well into
+    # following the fitted course in narrow-band spectra reaches well into
     # the plateaus, and the speed stays within +-3 km/h of the simulated truth.
     import passby.pipeline as pipeline
     scene = Scene((Vehicle(60 / 3.6, 9.0, 15.0, harmonic_tones(110.0, [0.3, 1.0, 0.7, 0.5])),), 30.0,

@@ -22,6 +22,7 @@ References
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -36,6 +37,7 @@ from passby.tracking import Track
 _CHUNK_FRAMES, _CHUNK_SUBBLOCKS = 512, 2048
 
 
+@functools.lru_cache(maxsize=8)
 def _antialias(sub: int) -> np.ndarray:
     """Kaiser-window low-pass FIR for decimating by ``sub``: flat to 0.4, stopped from 0.6 of the new rate.
 
@@ -97,7 +99,7 @@ class CourseSpectrogram:
     def bin_hz(self) -> float:
         return float(self.offset_hz[1] - self.offset_hz[0]) if self.offset_hz.size > 1 else 1.0
 
-    def level_db(self, rows, offset_hz) -> np.ndarray:
+    def level_db(self, offset_hz) -> np.ndarray:
         """What to add to interpolated heights for the level ``20 log10(A / 2)``.
 
         The block average's (boxcar) response at the offset, taken off.
@@ -162,7 +164,7 @@ def course_spectrograms(y: np.ndarray, fs: float, t_y0: float, frame_t: np.ndarr
     >>> col = int(np.argmax(row))
     >>> d, h = interpolate_peaks(row, np.array([0]), np.array([col]))
     >>> off = float(sp.offset_hz[col] + d[0] * sp.bin_hz)
-    >>> round(off, 3), round(float(h[0] + sp.level_db(0, off)), 2)   # 20 log10(1/2)
+    >>> round(off, 3), round(float(h[0] + sp.level_db(off)), 2)   # 20 log10(1/2)
     (20.0, -6.02)
     """
     y = np.asarray(y, dtype=np.float32)
@@ -326,7 +328,8 @@ def follow_in_spectrogram(track: Track, spec: CourseSpectrogram, level_offset_db
     """
     if spec is None or spec.frame.size < 2 * step:
         return track
-    z = spec.p_db - np.median(spec.p_db, axis=1, keepdims=True)      # dB over the row median
+    med = np.median(spec.p_db, axis=1)
+    z = spec.p_db - med[:, None]                                      # dB over the row median
     if masked is not None:
         z = np.where(masked, np.float32(-3.0), z)
     nb = z.shape[1]
@@ -388,8 +391,8 @@ def follow_in_spectrogram(track: Track, spec: CourseSpectrogram, level_offset_db
     d, height = interpolate_peaks(spec.p_db, q, best)
     offset = spec.offset_hz[best] + d * spec.bin_hz
     freq = spec.course_hz[q] + offset
-    snr = height - np.median(spec.p_db[q], axis=1)
-    level = height + spec.level_db(q, offset) + level_offset_db
+    snr = height - med[q]
+    level = height + spec.level_db(offset) + level_offset_db
     fr = np.r_[track.frame, spec.frame[q]].astype(int)
     order = np.argsort(fr, kind="stable")
     lv = track.level_db if track.level_db is not None else np.full(track.frame.size, np.nan)

@@ -369,3 +369,70 @@ def fall_ratio(track: Track, part: float = 0.2) -> float:
     """
     n = max(1, int(math.ceil(part * track.frame.size)))
     return float(np.median(track.freq_hz[:n]) / np.median(track.freq_hz[-n:]))
+
+
+def pass_ratio(approach, recession, min_ratio: float = 0.6, rel_tol: float = 0.004):
+    """The one ratio by which a source's tones fall across its pass.
+
+    At the pass every tone of a source falls by the same factor
+    ``rho = f_recede / f_approach`` (the plateaus of
+    :func:`passby.physics.plateau_solution`), so the tones heard just
+    after a close, fast pass are those heard just before it, scaled by
+    ``rho``. When the fall is too quick to track, which approaching piece
+    goes on as which receding piece is unknown; the ratio that pairs the
+    most pieces (a shift of the receding pattern in log-frequency onto the
+    approaching one) tells.
+
+    Parameters
+    ----------
+    approach, recession : sequence of (frequency_hz, weight)
+        Edge frequencies of the pieces just before and just after the pass.
+    min_ratio : float
+        Smallest ratio considered (0.6: a source at about 0.25 c).
+    rel_tol : float
+        How far (relative) a pair's ratio may lie from the common one.
+
+    Returns
+    -------
+    (rho, pairs) or None
+        ``pairs`` are index pairs ``(i, j)`` into ``approach`` and
+        ``recession``, each piece in one pair at most; the most pairs win,
+        then the greater sum of the pairs' smaller weights. ``rho`` is the
+        median ratio of the pairs. None when no pair falls.
+
+    Examples
+    --------
+    Harmonics of 100 Hz heard at 1.2 and 0.85 times their pitch, and a
+    stray piece at 333 Hz:
+
+    >>> a = [(120.0, 1), (240.0, 1), (360.0, 1)]
+    >>> r = [(85.0, 1), (170.0, 1), (255.0, 1), (333.0, 1)]
+    >>> rho, pairs = pass_ratio(a, r)
+    >>> round(rho, 4), pairs
+    (0.7083, [(0, 0), (1, 1), (2, 2)])
+    """
+    la = np.log([f for f, _ in approach]) if len(approach) else np.empty(0)
+    lr = np.log([f for f, _ in recession]) if len(recession) else np.empty(0)
+    wa = [w for _, w in approach]
+    wr = [w for _, w in recession]
+    best, best_key = None, None
+    tol = math.log1p(rel_tol)
+    diff = lr[None, :] - la[:, None]          # ln(r_j / a_i)
+    for i, j in zip(*np.nonzero((diff >= math.log(min_ratio)) & (diff < -tol))):
+        q = diff[i, j]
+        # Pairs within tol of this ratio, closest first, each piece once.
+        off = np.abs(diff - q)
+        cand = sorted((off[a, b], a, b) for a, b in zip(*np.nonzero(off <= tol)))
+        ua, ub, pairs = set(), set(), []
+        for _, a, b in cand:
+            if a not in ua and b not in ub:
+                ua.add(a)
+                ub.add(b)
+                pairs.append((int(a), int(b)))
+        key = (len(pairs), sum(min(wa[a], wr[b]) for a, b in pairs))
+        if best_key is None or key > best_key:
+            best_key, best = key, sorted(pairs)
+    if best is None:
+        return None
+    rho = float(np.exp(np.median([lr[b] - la[a] for a, b in best])))
+    return rho, best

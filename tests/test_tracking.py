@@ -1,0 +1,51 @@
+"""Tone identity across a pass: the common ratio of a source's fall."""
+
+import numpy as np
+import pytest
+
+from passby import physics
+from passby.tracking import pass_ratio
+
+
+def plateaus(f0s, v, c):
+    # Moving-source Doppler relation f = f0 c / (c -+ v) (OpenStax College Physics,
+    # sec. 17.4, eq. 17.9, from memory; checked in test_physics against its worked example).
+    a = [physics.doppler_moving_source(f, v, c) for f in f0s]
+    r = [physics.doppler_moving_source(f, -v, c) for f in f0s]
+    return a, r
+
+
+def test_harmonic_series_paired_at_its_plateau_ratio():
+    c, v = 343.2, 45.0
+    f0s = [180.0 * k for k in (1, 2, 3, 4, 5)]
+    a, r = plateaus(f0s, v, c)
+    rng = np.random.default_rng(7)
+    order = rng.permutation(len(r))
+    recession = [(r[i], 1.0) for i in order] + [(517.0, 5.0)]   # and a stray piece
+    rho, pairs = pass_ratio([(f, 1.0) for f in a], recession)
+    # (c - v) / (c + v): the ratio of the two Doppler plateaus, same textbook relation
+    assert rho == pytest.approx((c - v) / (c + v), rel=1e-12)
+    assert sorted((i, int(order[j])) for i, j in pairs) == [(k, k) for k in range(5)]
+    # and the two-plateau closed form (Ferguson & Quinn 1994) gives the speed back
+    speed, _ = physics.plateau_solution(1.0, rho, c)
+    assert speed == pytest.approx(v, rel=1e-9)
+
+
+def test_chord_with_a_coincidence_still_pairs_the_most_tones():
+    # A horn chord (equal-tempered ratios 1, 2^(4/12), 2^(7/12); common practice, no source)
+    # at 50 m/s, and a loud stray piece 2 % below the approaching middle tone (a pair at
+    # a small fall, heavier than any other); the common ratio pairs all three tones.
+    c, v = 343.2, 50.0
+    f0s = [400.0, 400.0 * 2 ** (4 / 12), 400.0 * 2 ** (7 / 12)]
+    a, r = plateaus(f0s, v, c)
+    rho, pairs = pass_ratio([(f, 1.0) for f in a], [(f, 1.0) for f in r] + [(a[1] * 0.98, 9.0)])
+    assert rho == pytest.approx((c - v) / (c + v), rel=1e-12)
+    assert pairs == [(0, 0), (1, 1), (2, 2)]
+
+
+def test_nothing_falls_no_pair():
+    # Pieces that rise, or fall by less than the tolerance, are no pass.
+    assert pass_ratio([(500.0, 1.0)], [(501.0, 1.0), (499.5, 1.0)]) is None
+    assert pass_ratio([], [(400.0, 1.0)]) is None
+    # A fall steeper than the smallest ratio (a source at about 0.25 c) is no pass either.
+    assert pass_ratio([(500.0, 1.0)], [(250.0, 1.0)]) is None

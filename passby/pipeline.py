@@ -83,7 +83,7 @@ TRACKS_KEPT, TRACKS_KEPT_S = 32, 60.0
 FOLLOW_ROUNDS = 1
 #: Pairing tones across a pass too quick to track (:meth:`Pipeline._across`):
 #: the pieces are cut ACROSS_GUARD_S either side of the fitted pass, must
-#: end (begin) within ACROSS_REACH_S of the cut, be ACROSS_MIN_S long, and
+#: end (begin) within ACROSS_REACH_S of the cut, span ACROSS_MIN_S, and
 #: their edge frequency is the median over ACROSS_EDGE_S next to the cut.
 ACROSS_GUARD_S, ACROSS_REACH_S, ACROSS_MIN_S, ACROSS_EDGE_S = 0.1, 0.5, 0.3, 0.3
 #: At most this many pieces either side (the strongest) are paired.
@@ -455,15 +455,21 @@ class Pipeline:
                 seen.add(key)
                 pool.append(tr)
         before, after = [], []
+        # A piece spans ACROSS_MIN_S with half its frames at least (a faint
+        # tone's track has gaps). Its edge frequency is its median over the
+        # same frames for every piece (ACROSS_EDGE_S next to the cut, or as
+        # near as the piece reaches), so that the pieces of one source share
+        # one Doppler factor there.
+        usable = lambda i, tr: i.size >= n_min // 2 and tr.frame[i[-1]] - tr.frame[i[0]] >= n_min
         for k, tr in enumerate(pool):
-            a = tr.frame < cut - guard
-            if a.sum() >= n_min and tr.frame[a][-1] >= cut - guard - reach:
-                i = np.flatnonzero(a)
-                before.append((k, i, float(np.median(tr.freq_hz[i[-n_edge:]]))))
-            b = tr.frame > cut + guard
-            if b.sum() >= n_min and tr.frame[b][0] <= cut + guard + reach:
-                i = np.flatnonzero(b)
-                after.append((k, i, float(np.median(tr.freq_hz[i[:n_edge]]))))
+            i = np.flatnonzero(tr.frame < cut - guard)
+            if usable(i, tr) and tr.frame[i[-1]] >= cut - guard - reach:
+                e = i[tr.frame[i] >= min(cut - guard, tr.frame[i[-1]] + 1) - n_edge]
+                before.append((k, i, float(np.median(tr.freq_hz[e]))))
+            i = np.flatnonzero(tr.frame > cut + guard)
+            if usable(i, tr) and tr.frame[i[0]] <= cut + guard + reach:
+                e = i[tr.frame[i] <= max(cut + guard, tr.frame[i[0]] - 1) + n_edge]
+                after.append((k, i, float(np.median(tr.freq_hz[e]))))
         if not before or not after:
             return None
         weight = lambda k, i: float(np.sum(10.0 ** (np.minimum(pool[k].snr_db[i], 40.0) / 10.0)))

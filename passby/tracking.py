@@ -371,7 +371,8 @@ def fall_ratio(track: Track, part: float = 0.2) -> float:
     return float(np.median(track.freq_hz[:n]) / np.median(track.freq_hz[-n:]))
 
 
-def pass_ratio(approach, recession, min_ratio: float = 0.6, rel_tol: float = 0.004):
+def pass_ratio(approach, recession, min_ratio: float = 0.6, max_ratio: float = 0.95,
+               rel_tol: float = 0.004):
     """The one ratio by which a source's tones fall across its pass.
 
     At the pass every tone of a source falls by the same factor
@@ -387,8 +388,11 @@ def pass_ratio(approach, recession, min_ratio: float = 0.6, rel_tol: float = 0.0
     ----------
     approach, recession : sequence of (frequency_hz, weight)
         Edge frequencies of the pieces just before and just after the pass.
-    min_ratio : float
-        Smallest ratio considered (0.6: a source at about 0.25 c).
+    min_ratio, max_ratio : float
+        Ratios considered: from 0.6 (a source at about 0.25 c); a best
+        ratio above 0.95 (about 32 km/h) is no pass too fast to track (its
+        pitch falls at most ``f0 v^2 / (c d)`` per second, under 0.8 % of
+        f0 per 10 ms frame even at 0.3 m), and gives None.
     rel_tol : float
         How far (relative) a pair's ratio may lie from the common one.
 
@@ -398,7 +402,8 @@ def pass_ratio(approach, recession, min_ratio: float = 0.6, rel_tol: float = 0.0
         ``pairs`` are index pairs ``(i, j)`` into ``approach`` and
         ``recession``, each piece in one pair at most; the most pairs win,
         then the greater sum of the pairs' smaller weights. ``rho`` is the
-        median ratio of the pairs. None when no pair falls.
+        median ratio of the pairs. None when no pair falls, or the best
+        ratio is above ``max_ratio``.
 
     Examples
     --------
@@ -435,4 +440,6 @@ def pass_ratio(approach, recession, min_ratio: float = 0.6, rel_tol: float = 0.0
     if best is None:
         return None
     rho = float(np.exp(np.median([lr[b] - la[a] for a, b in best])))
-    return rho, best
+    # The pieces of a slow pass line up best at its slow fall: then no pairing
+    # (a ratio excluded beforehand would leave coincidences to win).
+    return (rho, best) if rho <= max_ratio else None

@@ -44,8 +44,14 @@ def test_chord_with_a_coincidence_still_pairs_the_most_tones():
 
 
 def test_nothing_falls_no_pair():
-    # Pieces that rise, or fall by less than the tolerance, are no pass.
-    assert pass_ratio([(500.0, 1.0)], [(501.0, 1.0), (499.5, 1.0)]) is None
+    # Pieces that rise, or fall by less than 5 % (a pass slower than about 32 km/h,
+    # whose fall the tracker follows), are no pass too fast to track.
+    assert pass_ratio([(500.0, 1.0)], [(501.0, 1.0), (499.5, 1.0), (480.0, 1.0)]) is None
+    # A harmonic series passing at 20 km/h: its own fall pairs all four tones and wins
+    # over the coincidence of one tone's approach with another's recession (ratio
+    # about 2/3, a "pass" at 200 km/h); being slow, it gives no pairing at all.
+    a, r = plateaus([150.0 * k for k in (2, 3, 4, 5)], 20 / 3.6, 343.2)
+    assert pass_ratio([(f, 1.0) for f in a], [(f, 1.0) for f in r]) is None
     assert pass_ratio([], [(400.0, 1.0)]) is None
     # A fall steeper than the smallest ratio (a source at about 0.25 c) is no pass either.
     assert pass_ratio([(500.0, 1.0)], [(250.0, 1.0)]) is None

@@ -30,7 +30,8 @@ from passby.dechirp import course_spectrograms, follow_in_spectrogram
 from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
-from passby.tracking import SourceGrouper, Track, Tracker, fall_ratio, pass_ratio
+from passby.tracking import (SourceGrouper, Track, Tracker, fall_ratio, linked_groups, log_ratio_stability,
+                             pass_ratio)
 
 log = logging.getLogger(__name__)
 
@@ -93,6 +94,17 @@ ACROSS_MAX_PIECES = 12
 ENDED_KEPT_S, ENDED_KEPT = 30.0, 64
 #: See :func:`_prefer_across`.
 ACROSS_RESID_RATIO = 1.5
+#: Brief steep tracks (:attr:`Tracker.brief`: a close, fast pass heard only
+#: around the pass) are a source when BRIEF_TONES of them at least share
+#: BRIEF_OVERLAP_S and stay parallel in log-frequency within
+#: BRIEF_SPREAD; they wait BRIEF_SETTLE_S for more. Such a source is only
+#: a candidate: it is followed along its fitted course and reported only
+#: when the followed tracks reach BRIEF_CONFIRM_S of frames on each side of
+#: the pass (beyond BRIEF_CLEAR_S from it), where a chirp that is no pass
+#: (a bird, a squeal) has nothing to follow. A confirmed candidate is
+#: graded fair at best.
+BRIEF_TONES, BRIEF_OVERLAP_S, BRIEF_SPREAD, BRIEF_SETTLE_S = 1, 0.05, 0.006, 0.5
+BRIEF_CONFIRM_S, BRIEF_CLEAR_S = 0.5, 0.2
 
 
 class Pipeline:
@@ -142,6 +154,8 @@ class Pipeline:
         #: The tracks behind each of the last events (see TRACKS_KEPT), for refits and figures.
         self.tracks_of = {}
         self._ended = deque(maxlen=ENDED_KEPT)   # recently ended tracks (ENDED_KEPT_S)
+        self._brief = []                         # brief steep tracks not yet grouped
+        self._candidates = set()                 # ids of events from brief tracks, unconfirmed
 
     @property
     def c(self) -> float:
@@ -184,7 +198,7 @@ class Pipeline:
         ended += self.tracker.finish()
         self._remember(ended)
         groups = self.grouper.push(ended, [], self.tracker.frame, final=True)
-        return self._events_from(groups, final=True)
+        return self._events_from(groups, final=True, brief=self._brief_groups(final=True))
 
     # -- stages -----------------------------------------------------------
     def _advance(self, peaks) -> list:
@@ -195,8 +209,34 @@ class Pipeline:
         for pk in peaks:
             ended = self.tracker.push(pk)
             self._remember(ended)
-            events += self._events_from(self.grouper.push(ended, self.tracker.open, self.tracker.frame))
+            events += self._events_from(self.grouper.push(ended, self.tracker.open, self.tracker.frame),
+                                        brief=self._brief_groups())
         return events
+
+    def _brief_groups(self, final: bool = False) -> list:
+        """Groups of brief steep tracks that are ready: candidates of close, fast passes."""
+        self._brief += self.tracker.brief
+        self.tracker.brief = []
+        if not self._brief:
+            return []
+        hop = self.timebase.hop_s
+        settle = int(BRIEF_SETTLE_S / hop)
+        overlap = max(3, int(BRIEF_OVERLAP_S / hop))
+
+        def related(a, b):
+            r = log_ratio_stability(a, b, overlap)
+            return r is not None and abs(r[0]) > 0.02 and r[1] < BRIEF_SPREAD
+
+        groups = linked_groups(self._brief, related)
+        ready, keep = [], []
+        for members in groups:
+            if final or self.tracker.frame - max(t.end for t in members) >= settle:
+                if len(members) >= BRIEF_TONES:
+                    ready.append(sorted(members, key=lambda t: -t.strength))
+            else:
+                keep += members
+        self._brief = keep
+        return ready
 
     def _remember(self, ended):
         # Only the last ENDED_KEPT_S of each: a steady line's track can be minutes long.
@@ -206,7 +246,7 @@ class Pipeline:
         while self._ended and self._ended[0].end < horizon:
             self._ended.popleft()
 
-    def _events_from(self, groups, final: bool = False) -> list:
+    def _events_from(self, groups, final: bool = False, brief=()) -> list:
         # Strongest source first: a weaker group that is only more tones (or
         # a fragment) of a vehicle already measured follows its fitted curve.
         groups = sorted(groups, key=lambda g: -sum(t.strength for t in g))
@@ -218,6 +258,13 @@ class Pipeline:
                 continue
             ev = self._event(tracks)
             if ev is not None:
+                found.append(ev)
+        for tracks in brief:
+            if self._explained(tracks, found) is not None:
+                continue    # the sweep of a vehicle already found
+            ev = self._event(tracks)
+            if ev is not None:
+                self._candidates.add(id(ev))
                 found.append(ev)
         # Every event waits a little in ``_held`` for other sources of the
         # same vehicle (groups of one vehicle end at different times); of
@@ -243,7 +290,7 @@ class Pipeline:
         due = [h for h in self._held if final or now - h.end_s >
                (HOLD_REJECTED_S if h.quality == "rejected" else HOLD_S)]
         self._held = [h for h in self._held if h not in due]
-        events = [self._followed(h) for h in due]
+        events = [e for e in (self._followed(h) for h in due) if e is not None]
         self._recent.extend(events)
         events.sort(key=lambda e: e.pass_time_s if math.isfinite(e.pass_time_s) else e.start_s)
         return events
@@ -387,13 +434,41 @@ class Pipeline:
         fan's wobble, two sources mixed), and noise followed along it could
         make it look usable.
         """
+        if id(ev) in self._candidates:
+            self._candidates.discard(id(ev))
+            return self._confirmed(self._follow_all(ev, candidate=True))
         alt = self._across(ev)
         if alt is not None and _prefer_across(ev, *alt):
             ev = alt[0]
+        return self._follow_all(ev)
+
+    def _confirmed(self, ev: PassEvent):
+        """A candidate from brief tracks, if following found its plateaus; else None."""
+        tracks = self.tracks_of.get(id(ev), ())
+        if ev.quality == "rejected" or not tracks:
+            return None
+        heard = ev.pass_time_s + ev.closest_approach_m / ev.speed_of_sound_mps
+        t = np.concatenate([self.timebase.frame_time(tr.frame) for tr in tracks])
+        need = BRIEF_CONFIRM_S / self.timebase.hop_s
+        if min(np.sum(t < heard - BRIEF_CLEAR_S), np.sum(t > heard + BRIEF_CLEAR_S)) < need:
+            log.debug("brief sweep at %.1f s: nothing to follow either side, no pass", heard)
+            return None
+        if ev.quality == "good":
+            # Its course came from a tenth of a second of sweep: on the
+            # benchmark some such passes of horn chords were a tone off.
+            graded = dataclasses.replace(ev, quality="fair",
+                                         reason="found from its brief sweep at the pass only")
+            self.tracks_of[id(graded)] = self.tracks_of.pop(id(ev), ())
+            ev = graded
+        return ev
+
+    def _follow_all(self, ev: PassEvent, candidate: bool = False) -> PassEvent:
+        """Following and refitting (see :meth:`_followed`); ``candidate``: follow even a rejected fit."""
         tracks = self.tracks_of.get(id(ev))
-        if not tracks or not math.isfinite(ev.speed_mps) or ev.quality == "rejected":
+        if not tracks or not math.isfinite(ev.speed_mps) or (ev.quality == "rejected" and not candidate):
             return ev   # a rejected fit's course is no course to follow
-        if ev.quality == "good" and ev.speed_std_mps <= FOLLOW_ABOVE_STD_MPS and len(tracks) == len(ev.tones_hz):
+        if (not candidate and ev.quality == "good" and ev.speed_std_mps <= FOLLOW_ABOVE_STD_MPS
+                and len(tracks) == len(ev.tones_hz)):
             return ev   # measured well already: nothing to gain
         tb = self.timebase
         lo = max(0, int(math.floor((ev.start_s - FOLLOW_REACH_S - tb.t_first) / tb.hop_s)),

@@ -101,10 +101,18 @@ class Tracker:
     rel_tol : float
     """
 
+    #: A track too short to keep is kept apart in :attr:`brief` when it spans
+    #: BRIEF_MIN_S and falls by BRIEF_FALL from its first to its last frame:
+    #: the steep sweep of a close, fast pass heard only around the pass.
+    BRIEF_MIN_S, BRIEF_FALL = 0.1, 1.03
+
     def __init__(self, timebase: Timebase, bin_hz_at, min_track_s: float = 0.3,
                  max_gap_s: float = 0.3, max_track_s: float = 120.0, rel_tol: float = 0.01):
         self.bin_hz_at = bin_hz_at
         self.min_frames = max(3, int(round(min_track_s / timebase.hop_s)))
+        self.brief_frames = max(3, int(round(self.BRIEF_MIN_S / timebase.hop_s)))
+        #: Brief steep tracks ended so far (see BRIEF_FALL); the caller empties it.
+        self.brief: list[Track] = []
         self.max_gap = max(1, int(round(max_gap_s / timebase.hop_s)))
         self.max_frames = int(round(max_track_s / timebase.hop_s))
         self.max_overlap = max(1, int(round(0.1 / timebase.hop_s)))
@@ -140,6 +148,9 @@ class Tracker:
     def _close(self, t: _Open, done: list):
         if len(t.frame) >= self.min_frames:
             done.append(t.freeze())
+        elif (t.frame[-1] - t.frame[0] >= self.brief_frames and len(t.frame) >= self.brief_frames // 2
+              and t.freq[0] >= self.BRIEF_FALL * t.freq[-1]):
+            self.brief.append(t.freeze())
 
     def _expire(self, frame: int, done: list):
         keep, ended = [], []
@@ -291,6 +302,34 @@ def same_source(a: Track, b: Track, min_overlap: int, max_spread: float = 0.003,
     return abs(med) > 0.02 and spread < tol and sweep > max(min_sweep, 5.0 * tol)
 
 
+def linked_groups(items: list, related) -> list:
+    """The items split into groups linked by ``related(a, b)`` (transitively).
+
+    Union-find over all pairs; groups keep the items' order.
+
+    Examples
+    --------
+    >>> linked_groups([1, 2, 10, 11, 30], lambda a, b: abs(a - b) <= 1)
+    [[1, 2], [10, 11], [30]]
+    """
+    parent = list(range(len(items)))
+
+    def root(i):
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    for i in range(len(items)):
+        for j in range(i + 1, len(items)):
+            if related(items[i], items[j]):
+                parent[root(i)] = root(j)
+    groups = {}
+    for i, item in enumerate(items):
+        groups.setdefault(root(i), []).append(item)
+    return list(groups.values())
+
+
 class SourceGrouper:
     """Collects ended tracks and releases them grouped by source.
 
@@ -317,27 +356,12 @@ class SourceGrouper:
         self.pool.extend(ended)
         if not self.pool:
             return []
-        n = len(self.pool)
-        parent = list(range(n))
+        def related(a, b):
+            return not (a.end < b.start or b.end < a.start) and same_source(a, b, self.min_overlap)
 
-        def root(i):
-            while parent[i] != i:
-                parent[i] = parent[parent[i]]
-                i = parent[i]
-            return i
-
-        for i in range(n):
-            for j in range(i + 1, n):
-                a, b = self.pool[i], self.pool[j]
-                if a.end < b.start or b.end < a.start:
-                    continue
-                if same_source(a, b, self.min_overlap):
-                    parent[root(i)] = root(j)
-        groups = {}
-        for i in range(n):
-            groups.setdefault(root(i), []).append(self.pool[i])
+        groups = linked_groups(self.pool, related)
         out, keep = [], []
-        for members in groups.values():
+        for members in groups:
             end = max(t.end for t in members)
             start = min(t.start for t in members)
             ready = final or frame - end >= self.max_wait

@@ -9,7 +9,7 @@ from, so the same audio gives the same numbers either way::
             -> fit_pass -> PassEvent
 
 Every stage keeps only the state it needs (the decimation filter's
-history, about a minute of per-bin background summaries, the last 40 s of
+history, about a minute of per-bin background summaries, the last 70 s of
 decimated samples for following tones into the noise, the open tracks and the ended
 tracks awaiting their group), so memory does not grow with the length of
 the stream.
@@ -72,6 +72,13 @@ MAX_REJECTED_REL_STD = 0.3
 FOLLOW_REACH_S, FOLLOW_SIGMA_S = 20.0, 0.15
 FOLLOW_TOL_BINS, FOLLOW_BAND_REL = 1.5, 0.012
 FOLLOW_MIN_POWER, FOLLOW_LINE_DB = 4.0, 3.0
+#: Following looks back at most FOLLOW_BACK_S from the newest frame tracked.
+#: The front end keeps KEPT_S of samples and backgrounds, which covers that
+#: whatever the block size (up to 5 s) and the background's look-ahead (up
+#: to 30 s at the start of a stream): what is followed, hence the numbers,
+#: do not depend on how the stream was cut into blocks.
+FOLLOW_BACK_S = 35.0
+KEPT_S = FOLLOW_BACK_S + 35.0
 #: A good event whose speed is this certain (m/s) is not followed further.
 FOLLOW_ABOVE_STD_MPS = 0.08
 #: A track joins a vehicle found as a new tone when its rest frequency is
@@ -136,7 +143,7 @@ class Pipeline:
     def __init__(self, sample_rate: int, settings: AnalysisSettings | None = None):
         self.sample_rate = int(sample_rate)
         self.settings = s = settings or AnalysisSettings()
-        self.front = FrontEnd(self.sample_rate, s.f_min_hz, s.f_max_hz, s.threshold_db)
+        self.front = FrontEnd(self.sample_rate, s.f_min_hz, s.f_max_hz, s.threshold_db, keep_s=KEPT_S)
         self.timebase = self.front.timebase
         self.tracker = Tracker(self.timebase, self.front.bin_hz_at, min_track_s=s.min_track_s)
         self.grouper = SourceGrouper(self.timebase)
@@ -155,7 +162,9 @@ class Pipeline:
         self.tracks_of = {}
         self._ended = deque(maxlen=ENDED_KEPT)   # recently ended tracks (ENDED_KEPT_S)
         self._brief = []                         # brief steep tracks not yet grouped
-        self._candidates = set()                 # ids of events from brief tracks, unconfirmed
+        # Events from brief tracks, not yet confirmed, by id (the event is kept
+        # too: an id alone could be reused by a later event).
+        self._candidates = {}
 
     @property
     def c(self) -> float:
@@ -264,7 +273,7 @@ class Pipeline:
                 continue    # the sweep of a vehicle already found
             ev = self._event(tracks)
             if ev is not None:
-                self._candidates.add(id(ev))
+                self._candidates[id(ev)] = ev
                 found.append(ev)
         # Every event waits a little in ``_held`` for other sources of the
         # same vehicle (groups of one vehicle end at different times); of
@@ -286,6 +295,8 @@ class Pipeline:
                 self.tracks_of[id(graded)] = self.tracks_of.pop(id(best), ())
                 best = graded
             self._held = [h for h in self._held if h not in twins] + [best]
+        # Candidates dropped as twins of a better event are forgotten.
+        self._candidates = {k: e for k, e in self._candidates.items() if any(e is h for h in self._held)}
         now = self.timebase.frame_time(self.tracker.frame)
         due = [h for h in self._held if final or now - h.end_s >
                (HOLD_REJECTED_S if h.quality == "rejected" else HOLD_S)]
@@ -404,6 +415,8 @@ class Pipeline:
             level_calibrated=self.settings.level_offset_db is not None,
             dropped_blocks=self._dropped(start_s, end_s),
         )
+        # (An id may be that of an event gone: re-inserted, the entry counts as the newest.)
+        self.tracks_of.pop(id(ev), None)
         self.tracks_of[id(ev)] = tracks
         # Keep the tracks of the last events only: at most TRACKS_KEPT of
         # them, none that ended more than TRACKS_KEPT_S ago (followed tracks
@@ -434,12 +447,13 @@ class Pipeline:
         fan's wobble, two sources mixed), and noise followed along it could
         make it look usable.
         """
-        if id(ev) in self._candidates:
-            self._candidates.discard(id(ev))
+        if self._candidates.pop(id(ev), None) is ev:
             return self._confirmed(self._follow_all(ev, candidate=True))
         alt = self._across(ev)
         if alt is not None and _prefer_across(ev, *alt):
             ev = alt[0]
+        elif alt is not None:
+            self.tracks_of.pop(id(alt[0]), None)
         return self._follow_all(ev)
 
     def _confirmed(self, ev: PassEvent):
@@ -471,9 +485,9 @@ class Pipeline:
                 and len(tracks) == len(ev.tones_hz)):
             return ev   # measured well already: nothing to gain
         tb = self.timebase
-        lo = max(0, int(math.floor((ev.start_s - FOLLOW_REACH_S - tb.t_first) / tb.hop_s)),
-                 self.front.kept_from)
         hi = self.tracker.frame
+        lo = max(0, int(math.floor((ev.start_s - FOLLOW_REACH_S - tb.t_first) / tb.hop_s)),
+                 hi - int(round(FOLLOW_BACK_S / tb.hop_s)), self.front.kept_from)
         if hi <= lo:
             return ev
         t = tb.frame_time(np.arange(lo, hi + 1))

@@ -430,8 +430,13 @@ class Pipeline:
             self.tracks_of.pop(oldest)
         return ev
 
-    def _followed(self, ev: PassEvent) -> PassEvent:
+    def _followed(self, ev: PassEvent):
         """The event refitted after following its tones along the fitted course.
+
+        First its tones may be paired across the pass (:meth:`_across`).
+        A candidate from brief sweeps is followed even when rejected, and
+        returned only if following confirms it (:meth:`_confirmed`);
+        otherwise None.
 
         The tracks end where their peaks sink below the tracking threshold,
         but the fitted curve says where each tone goes on. The kept

@@ -30,7 +30,7 @@ from passby.dechirp import course_spectrograms, follow_in_spectrogram
 from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
-from passby.tracking import (SourceGrouper, Track, Tracker, fall_ratio, linked_groups, log_ratio_stability,
+from passby.tracking import (SourceGrouper, Tracker, fall_ratio, linked_groups, log_ratio_stability,
                              pass_ratio)
 
 log = logging.getLogger(__name__)
@@ -250,8 +250,8 @@ class Pipeline:
     def _remember(self, ended):
         # Only the last ENDED_KEPT_S of each: a steady line's track can be minutes long.
         n = int(ENDED_KEPT_S / self.timebase.hop_s)
-        self._ended.extend(t if t.frame.size <= n else _tail(t, n) for t in ended)
-        horizon = self.tracker.frame - int(ENDED_KEPT_S / self.timebase.hop_s)
+        self._ended.extend(t if t.frame.size <= n else t.take(slice(-n, None)) for t in ended)
+        horizon = self.tracker.frame - n
         while self._ended and self._ended[0].end < horizon:
             self._ended.popleft()
 
@@ -289,11 +289,8 @@ class Pipeline:
             best = min(twins + [ev], key=_merit)
             conflict = any(_disagree(best, o) for o in twins + [ev] if o is not best)
             if conflict and best.quality == "good":
-                graded = dataclasses.replace(best, quality="fair",
-                                             reason="another tone of this vehicle gave a different "
-                                                    "speed (a close, fast pass?)")
-                self.tracks_of[id(graded)] = self.tracks_of.pop(id(best), ())
-                best = graded
+                best = self._fair(best, "another tone of this vehicle gave a different speed "
+                                        "(a close, fast pass?)")
             self._held = [h for h in self._held if h not in twins] + [best]
         # Candidates dropped as twins of a better event are forgotten.
         self._candidates = {k: e for k, e in self._candidates.items() if any(e is h for h in self._held)}
@@ -475,11 +472,14 @@ class Pipeline:
         if ev.quality == "good":
             # Its course came from a tenth of a second of sweep: on the
             # benchmark some such passes of horn chords were a tone off.
-            graded = dataclasses.replace(ev, quality="fair",
-                                         reason="found from its brief sweep at the pass only")
-            self.tracks_of[id(graded)] = self.tracks_of.pop(id(ev), ())
-            ev = graded
+            ev = self._fair(ev, "found from its brief sweep at the pass only")
         return ev
+
+    def _fair(self, ev: PassEvent, reason: str) -> PassEvent:
+        """``ev`` graded fair for ``reason``; its tracks go with it."""
+        graded = dataclasses.replace(ev, quality="fair", reason=reason)
+        self.tracks_of[id(graded)] = self.tracks_of.pop(id(ev), ())
+        return graded
 
     def _follow_all(self, ev: PassEvent, candidate: bool = False) -> PassEvent:
         """Following and refitting (see :meth:`_followed`); ``candidate``: follow even a rejected fit."""
@@ -542,10 +542,12 @@ class Pipeline:
         cut = (heard - tb.t_first) / tb.hop_s
         guard, reach = ACROSS_GUARD_S / tb.hop_s, ACROSS_REACH_S / tb.hop_s
         n_min, n_edge = int(ACROSS_MIN_S / tb.hop_s), max(3, int(ACROSS_EDGE_S / tb.hop_s))
+        near = lambda first, last: first < cut + guard + reach and last > cut - guard - reach
         pool, seen = [], set()
-        for tr in list(self.tracks_of.get(id(ev), ())) + list(self._ended) + [o.freeze() for o in self.tracker.open]:
+        for tr in (list(self.tracks_of.get(id(ev), ())) + list(self._ended)
+                   + [o.freeze() for o in self.tracker.open if near(o.frame[0], o.frame[-1])]):
             key = (tr.start, tr.frame.size, float(tr.freq_hz[0]))
-            if key not in seen and tr.start < cut + guard + reach and tr.end > cut - guard - reach:
+            if key not in seen and near(tr.start, tr.end):
                 seen.add(key)
                 pool.append(tr)
         before, after = [], []
@@ -555,39 +557,29 @@ class Pipeline:
         # near as the piece reaches), so that the pieces of one source share
         # one Doppler factor there.
         usable = lambda i, tr: i.size >= n_min // 2 and tr.frame[i[-1]] - tr.frame[i[0]] >= n_min
-        for k, tr in enumerate(pool):
+        for k, tr in enumerate(pool):   # (track index, piece, edge frequency)
             i = np.flatnonzero(tr.frame < cut - guard)
             if usable(i, tr) and tr.frame[i[-1]] >= cut - guard - reach:
                 e = i[tr.frame[i] >= min(cut - guard, tr.frame[i[-1]] + 1) - n_edge]
-                before.append((k, i, float(np.median(tr.freq_hz[e]))))
+                before.append((k, tr.take(i), float(np.median(tr.freq_hz[e]))))
             i = np.flatnonzero(tr.frame > cut + guard)
             if usable(i, tr) and tr.frame[i[0]] <= cut + guard + reach:
                 e = i[tr.frame[i] <= max(cut + guard, tr.frame[i[0]] - 1) + n_edge]
-                after.append((k, i, float(np.median(tr.freq_hz[e]))))
+                after.append((k, tr.take(i), float(np.median(tr.freq_hz[e]))))
         if not before or not after:
             return None
-        weight = lambda k, i: float(np.sum(10.0 ** (np.minimum(pool[k].snr_db[i], 40.0) / 10.0)))
         # The strongest pieces only: the search is quadratic in the pairs.
-        before = sorted(before, key=lambda p: -weight(p[0], p[1]))[:ACROSS_MAX_PIECES]
-        after = sorted(after, key=lambda p: -weight(p[0], p[1]))[:ACROSS_MAX_PIECES]
-        found = pass_ratio([(f, weight(k, i)) for k, i, f in before],
-                           [(f, weight(k, i)) for k, i, f in after])
+        before = sorted(before, key=lambda p: -p[1].strength)[:ACROSS_MAX_PIECES]
+        after = sorted(after, key=lambda p: -p[1].strength)[:ACROSS_MAX_PIECES]
+        found = pass_ratio([(f, piece.strength) for _, piece, f in before],
+                           [(f, piece.strength) for _, piece, f in after])
         if found is None:
             return None
         rho, pairs = found
         if all(before[a][0] == after[b][0] for a, b in pairs):
             return None     # each tone's own track runs through the pass: nothing to pair
-        joined = []
-        for a, b in pairs:
-            (ka, ia, _), (kb, ib, _) = before[a], after[b]
-            if ka == kb:
-                joined.append(pool[ka])
-                continue
-            ta, tb_ = pool[ka], pool[kb]
-            lv = (np.r_[ta.level_db[ia], tb_.level_db[ib]]
-                  if ta.level_db is not None and tb_.level_db is not None else None)
-            joined.append(Track(np.r_[ta.frame[ia], tb_.frame[ib]], np.r_[ta.freq_hz[ia], tb_.freq_hz[ib]],
-                                np.r_[ta.snr_db[ia], tb_.snr_db[ib]], lv))
+        joined = [pool[before[a][0]] if before[a][0] == after[b][0] else before[a][1].then(after[b][1])
+                  for a, b in pairs]
         joined.sort(key=lambda t: -t.strength)
         new = self._fitted(joined)
         log.debug("pass at %.1f s (%.2f m/s, %s, residual %.2f Hz, %d tones): %d tones paired across it "
@@ -683,12 +675,6 @@ def _prefer_across(ev: PassEvent, alt: PassEvent, n_pairs: int) -> bool:
         return False
     return ((r1 <= ACROSS_RESID_RATIO * r0 and len(alt.tones_hz) >= len(ev.tones_hz))
             or (n_pairs >= 2 and r1 <= r0) or r1 < 0.5 * r0)
-
-
-def _tail(track: Track, n: int) -> Track:
-    """The last ``n`` points of a track."""
-    return Track(track.frame[-n:], track.freq_hz[-n:], track.snr_db[-n:],
-                 None if track.level_db is None else track.level_db[-n:])
 
 
 def _merit(ev: PassEvent):

@@ -55,6 +55,18 @@ class Track:
         """Sum of the linear SNR over the track (its total evidence)."""
         return float(np.sum(10.0 ** (np.minimum(self.snr_db, 40.0) / 10.0)))
 
+    def take(self, index) -> "Track":
+        """The points at ``index`` (a slice or an index array, in frame order)."""
+        return Track(self.frame[index], self.freq_hz[index], self.snr_db[index],
+                     None if self.level_db is None else self.level_db[index])
+
+    def then(self, later: "Track") -> "Track":
+        """This track followed by ``later`` (all of whose frames come after), as one."""
+        lv = (None if self.level_db is None or later.level_db is None
+              else np.r_[self.level_db, later.level_db])
+        return Track(np.r_[self.frame, later.frame], np.r_[self.freq_hz, later.freq_hz],
+                     np.r_[self.snr_db, later.snr_db], lv)
+
 
 class _Open:
     """A track still being followed (mutable, internal)."""

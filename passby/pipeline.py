@@ -8,6 +8,10 @@ from, so the same audio gives the same numbers either way::
             -> fit_pass (per source) -> course_spectrograms -> follow_in_spectrogram
             -> fit_pass -> PassEvent
 
+Tracks too short to keep become candidates of close, fast passes (brief
+sweeps, and scattered pieces that vote for a course in ``sweep_search``),
+reported only when following confirms them.
+
 Every stage keeps only the state it needs (the decimation filter's
 history, about a minute of per-bin background summaries, the last 70 s of
 decimated samples for following tones into the noise, the open tracks and the ended
@@ -25,13 +29,13 @@ from collections import deque
 import numpy as np
 
 from passby.events import PassEvent
-from passby.fitting import SPEED_BOUND_C, fit_pass, track_data, windowed_factor
+from passby.fitting import SPEED_BOUND_C, fit_pass, sweep_search, track_data, windowed_factor
 from passby.dechirp import course_spectrograms, follow_in_spectrogram
 from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
-from passby.tracking import (SourceGrouper, Tracker, fall_ratio, linked_groups, log_ratio_stability,
-                             pass_ratio)
+from passby.tracking import (SourceGrouper, Track, Tracker, fall_ratio, linked_groups,
+                             log_ratio_stability, pass_ratio)
 
 log = logging.getLogger(__name__)
 
@@ -112,6 +116,20 @@ ACROSS_RESID_RATIO = 1.5
 #: graded fair at best.
 BRIEF_TONES, BRIEF_OVERLAP_S, BRIEF_SPREAD, BRIEF_SETTLE_S = 1, 0.05, 0.006, 0.5
 BRIEF_CONFIRM_S, BRIEF_CLEAR_S = 0.5, 0.2
+#: Scattered pieces of a close, fast pass (:meth:`Pipeline._sweep_groups`):
+#: when SWEEP_MIN_POINTS peaks of tracks too short to keep
+#: (:attr:`Tracker.loose`, :attr:`Tracker.brief`) fall within
+#: SWEEP_WINDOW_S, those within SWEEP_REACH_S of their median time vote for
+#: a pass course (:func:`~passby.fitting.sweep_search`); a course with
+#: SWEEP_MIN_SCORE votes is a candidate like a brief sweep's (followed,
+#: confirmed or dropped, graded fair at best). The pieces wait
+#: SWEEP_SETTLE_S for the rest of the pass. Neither the course searched
+#: nor any candidate's fit may pass closer than CANDIDATE_MIN_CLOSEST_M: on
+#: the benchmark's main grid such courses joined different tones of a horn
+#: chord before and after a slow, distant pass.
+SWEEP_MIN_POINTS, SWEEP_WINDOW_S, SWEEP_REACH_S = 10, 0.3, 0.4
+SWEEP_MIN_SCORE, SWEEP_SETTLE_S = 4, 0.5
+CANDIDATE_MIN_CLOSEST_M = 1.0
 
 
 class Pipeline:
@@ -162,6 +180,8 @@ class Pipeline:
         self.tracks_of = {}
         self._ended = deque(maxlen=ENDED_KEPT)   # recently ended tracks (ENDED_KEPT_S)
         self._brief = []                         # brief steep tracks not yet grouped
+        self._pieces = []                        # tracks too short to keep, for _sweep_groups
+        self._swept_to = -1                      # last frame of the last vote
         # Events from brief tracks, not yet confirmed, by id (the event is kept
         # too: an id alone could be reused by a later event).
         self._candidates = {}
@@ -207,7 +227,7 @@ class Pipeline:
         ended += self.tracker.finish()
         self._remember(ended)
         groups = self.grouper.push(ended, [], self.tracker.frame, final=True)
-        return self._events_from(groups, final=True, brief=self._brief_groups(final=True))
+        return self._events_from(groups, final=True, candidates=self._candidate_sources(final=True))
 
     # -- stages -----------------------------------------------------------
     def _advance(self, peaks) -> list:
@@ -219,8 +239,14 @@ class Pipeline:
             ended = self.tracker.push(pk)
             self._remember(ended)
             events += self._events_from(self.grouper.push(ended, self.tracker.open, self.tracker.frame),
-                                        brief=self._brief_groups())
+                                        candidates=self._candidate_sources())
         return events
+
+    def _candidate_sources(self, final: bool = False) -> list:
+        """(tracks, start) of the candidates ready: brief sweeps, then scattered pieces."""
+        self._pieces += self.tracker.loose + self.tracker.brief
+        self.tracker.loose = []
+        return [(g, None) for g in self._brief_groups(final)] + self._sweep_groups(final)
 
     def _brief_groups(self, final: bool = False) -> list:
         """Groups of brief steep tracks that are ready: candidates of close, fast passes."""
@@ -247,6 +273,73 @@ class Pipeline:
         self._brief = keep
         return ready
 
+    def _sweep_groups(self, final: bool = False) -> list:
+        """Candidates from pieces too short to track, gathered around one moment.
+
+        At -5 dB a tone of a pass with ``d / v`` under about 0.1 s stands
+        above the threshold for a few frames at a time as it sweeps: single
+        peaks and pieces of a few frames, none long enough to be a track or
+        a brief sweep. Where SWEEP_MIN_POINTS of their peaks gather within
+        SWEEP_WINDOW_S, the peaks around them vote for a pass course
+        (:func:`~passby.fitting.sweep_search`); the groups of peaks that
+        agree on a rest frequency along the winning course become the
+        candidate's tracks (a frame's strongest peak of each group), to be
+        fitted from that course.
+
+        Returns
+        -------
+        list of (tracks, start)
+            ``start`` the course's ``[v, d, t0, f0...]`` for the fit.
+        """
+        if not self._pieces:
+            return []
+        hop = self.timebase.hop_s
+        win, reach = int(round(SWEEP_WINDOW_S / hop)), int(round(SWEEP_REACH_S / hop))
+        ready_to = math.inf if final else self.tracker.frame - int(round(SWEEP_SETTLE_S / hop))
+        pts = Track.joined(self._pieces)
+        pts = pts.take(np.flatnonzero(pts.frame > self._swept_to))
+        fr = pts.frame
+        n_in = np.searchsorted(fr, fr + win, side="right") - np.arange(fr.size)
+        out, used_to = [], self._swept_to
+        for i in np.flatnonzero(n_in >= SWEEP_MIN_POINTS).tolist():
+            if fr[i] <= used_to:
+                continue
+            centre = int(np.median(fr[i: i + n_in[i]]))
+            if centre + reach > ready_to:
+                break   # wait for the rest of the pass
+            used_to = centre + reach
+            sel = np.flatnonzero(np.abs(fr - centre) <= reach)
+            found = self._sweep_source(pts.take(sel), centre)
+            if found is not None:
+                out.append(found)
+        # Keep only the pieces that may still gather with later ones.
+        self._swept_to = used_to
+        keep_from = used_to if final else max(used_to, ready_to - reach - win)
+        self._pieces = [p for p in self._pieces if p.end > keep_from]
+        return out
+
+    def _sweep_source(self, pts: Track, centre: int):
+        """The (tracks, start) of the course that ``pts`` (frame order) vote for, or None."""
+        tb = self.timebase
+        hyp = sweep_search(tb.frame_time(pts.frame), pts.freq_hz, self.c, float(tb.frame_time(centre)),
+                           self.front.sigma_at(pts.freq_hz) / math.sqrt(2.0),
+                           min_closest_m=CANDIDATE_MIN_CLOSEST_M)
+        log.debug("%d scattered peaks at %.2f s vote for %.0f km/h, d %.1f m (%d votes)", pts.frame.size,
+                  tb.frame_time(centre), 3.6 * hyp.speed_mps, hyp.closest_m, hyp.score)
+        if hyp.score < SWEEP_MIN_SCORE:
+            return None
+        tracks, rests = [], []
+        for k in range(hyp.rest_hz.size):
+            mine = pts.take(np.flatnonzero(hyp.tone == k))
+            # One point per frame: the strongest.
+            o = np.lexsort((-mine.snr_db, mine.frame))
+            first = np.r_[True, np.diff(mine.frame[o]) > 0]
+            tracks.append(mine.take(o[first]))
+            rests.append(hyp.rest_hz[k])
+        order = sorted(range(len(tracks)), key=lambda k: -tracks[k].strength)
+        start = np.r_[hyp.speed_mps, hyp.closest_m, hyp.pass_time_s, [rests[k] for k in order]]
+        return [tracks[k] for k in order], start
+
     def _remember(self, ended):
         # Only the last ENDED_KEPT_S of each: a steady line's track can be minutes long.
         n = int(ENDED_KEPT_S / self.timebase.hop_s)
@@ -255,7 +348,7 @@ class Pipeline:
         while self._ended and self._ended[0].end < horizon:
             self._ended.popleft()
 
-    def _events_from(self, groups, final: bool = False, brief=()) -> list:
+    def _events_from(self, groups, final: bool = False, candidates=()) -> list:
         # Strongest source first: a weaker group that is only more tones (or
         # a fragment) of a vehicle already measured follows its fitted curve.
         groups = sorted(groups, key=lambda g: -sum(t.strength for t in g))
@@ -268,10 +361,14 @@ class Pipeline:
             ev = self._event(tracks)
             if ev is not None:
                 found.append(ev)
-        for tracks in brief:
+        for tracks, start in candidates:
             if self._explained(tracks, found) is not None:
                 continue    # the sweep of a vehicle already found
-            ev = self._event(tracks)
+            ev = self._event(tracks, start)
+            if ev is not None and ev.closest_approach_m < CANDIDATE_MIN_CLOSEST_M:
+                log.debug("candidate at %.1f s passes %.1f m away: tones of a chord joined, dropped",
+                          ev.pass_time_s, ev.closest_approach_m)
+                ev = None
             if ev is not None:
                 self._candidates[id(ev)] = ev
                 found.append(ev)
@@ -357,7 +454,7 @@ class Pipeline:
         raw = float(np.percentile(np.abs(track.freq_hz - np.median(track.freq_hz)), 75))
         return spread < 0.5 * raw
 
-    def _event(self, tracks):
+    def _event(self, tracks, start=None):
         main = tracks[0]
         span_s = (max(t.end for t in tracks) - min(t.start for t in tracks)) * self.timebase.hop_s
         needed = MIN_FALL_RATIO if span_s >= SHORT_SOURCE_S else SHORT_FALL_RATIO
@@ -365,7 +462,7 @@ class Pipeline:
             log.debug("tracks at %.0f Hz from %.1f s: no Doppler fall, not a pass-by",
                       main.freq_hz.mean(), self.timebase.frame_time(main.start))
             return None
-        return self._fitted(tracks)
+        return self._fitted(tracks, start)
 
     def _fitted(self, tracks, start=None):
         """Fit a source's tracks; its event, or None when it is no pass-by.

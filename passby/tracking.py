@@ -60,6 +60,15 @@ class Track:
         return Track(self.frame[index], self.freq_hz[index], self.snr_db[index],
                      None if self.level_db is None else self.level_db[index])
 
+    @staticmethod
+    def joined(tracks) -> "Track":
+        """The points of ``tracks`` (any overlap) as one series in frame order."""
+        cat = [np.concatenate([getattr(t, a) for t in tracks]) for a in ("frame", "freq_hz", "snr_db")]
+        lv = (None if any(t.level_db is None for t in tracks)
+              else np.concatenate([t.level_db for t in tracks]))
+        o = np.argsort(cat[0], kind="stable")
+        return Track(cat[0][o], cat[1][o], cat[2][o], None if lv is None else lv[o])
+
     def then(self, later: "Track") -> "Track":
         """This track followed by ``later`` (all of whose frames come after), as one."""
         lv = (None if self.level_db is None or later.level_db is None
@@ -101,7 +110,8 @@ class Tracker:
     tolerance of ``max(2 bins, rel_tol * f)`` that widens a little with the
     gap (to twice at most) and, downwards only, with the track's fall rate: a passing source's pitch
     only falls, and at a close pass it falls fast. A track not continued
-    for ``max_gap_s`` ends; tracks shorter than ``min_track_s`` are dropped.
+    for ``max_gap_s`` ends; tracks shorter than ``min_track_s`` are set
+    aside (:attr:`brief` and :attr:`loose`), not returned.
 
     Parameters
     ----------
@@ -125,6 +135,9 @@ class Tracker:
         self.brief_frames = max(3, int(round(self.BRIEF_MIN_S / timebase.hop_s)))
         #: Brief steep tracks ended so far (see BRIEF_FALL); the caller empties it.
         self.brief: list[Track] = []
+        #: The other tracks too short to keep (single peaks too), ended so
+        #: far; the caller empties it (see :func:`passby.fitting.sweep_search`).
+        self.loose: list[Track] = []
         self.max_gap = max(1, int(round(max_gap_s / timebase.hop_s)))
         self.max_frames = int(round(max_track_s / timebase.hop_s))
         self.max_overlap = max(1, int(round(0.1 / timebase.hop_s)))
@@ -163,6 +176,8 @@ class Tracker:
         elif (t.frame[-1] - t.frame[0] >= self.brief_frames and len(t.frame) >= self.brief_frames // 2
               and t.freq[0] >= self.BRIEF_FALL * t.freq[-1]):
             self.brief.append(t.freeze())
+        else:
+            self.loose.append(t.freeze())
 
     def _expire(self, frame: int, done: list):
         keep, ended = [], []

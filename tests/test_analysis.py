@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 
 from passby import analyze
+from passby import pipeline
 from passby.pipeline import Pipeline
 from passby.settings import AnalysisSettings
 from passby.simulation import Interferer, Scene, Tone, Vehicle, harmonic_tones, render
@@ -174,7 +175,6 @@ def test_following_hears_a_faint_pass_longer(seed, monkeypatch):
     # SNR -5 dB at 9 m: the 12 dB tracks cover a few seconds around the pass;
     # following the fitted course in narrow-band spectra reaches well into
     # the plateaus, and the speed stays within +-3 km/h of the simulated truth.
-    import passby.pipeline as pipeline
     scene = Scene((Vehicle(60 / 3.6, 9.0, 15.0, harmonic_tones(110.0, [0.3, 1.0, 0.7, 0.5])),), 30.0,
                   16000, snr_db=-5.0, ground_reflection=0.7, seed=seed)
     followed = accepted(run(scene))
@@ -224,6 +224,27 @@ def test_close_fast_pass_in_noise_found_from_its_brief_sweep(seed):
     assert len(ev) == 1
     assert ev[0].quality == "fair"
     assert abs(ev[0].speed_mps * 3.6 - 160.0) <= max(3.0, 0.03 * 160.0)
+
+
+@pytest.mark.parametrize("seed", [3, 5, 8])
+def test_close_fast_pass_heard_in_scraps_found_by_its_course_vote(seed, monkeypatch):
+    # 180 km/h at 3 m (d/v 0.06 s), SNR -5 dB, 0.3 % pitch wander, a ground reflection,
+    # weak fundamental: the tones stand above the threshold for a few frames at a time,
+    # no track and no brief sweep forms. The scattered peaks vote for a pass course
+    # (fitting.sweep_search); the candidate is followed and confirmed like a brief
+    # sweep's. Speed within +-3 km/h or 3 % (in-service tolerance of traffic radar,
+    # common practice, no source); graded fair at best. At these conditions only some
+    # passes are found this way (the benchmark's hard subset measures how many); the
+    # seeds are ones it finds, and without the vote none of them is found.
+    scene = Scene((Vehicle(180 / 3.6, 3.0, 10.0, harmonic_tones(400.0, [0.3, 1.0, 0.7, 0.6, 0.5]),
+                           source_height_m=0.5, wander_rms=0.003),), 20.0, 16000, snr_db=-5.0,
+                  ground_reflection=0.7, noise="road", seed=seed)
+    ev = accepted(run(scene))
+    assert len(ev) == 1
+    assert ev[0].quality == "fair"
+    assert abs(ev[0].speed_mps * 3.6 - 180.0) <= max(3.0, 0.03 * 180.0)
+    monkeypatch.setattr(pipeline, "SWEEP_MIN_POINTS", 10**9)
+    assert accepted(run(scene)) == []
 
 
 def test_brief_chirps_that_are_no_pass_give_no_event():

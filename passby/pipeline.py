@@ -121,7 +121,9 @@ BRIEF_CONFIRM_S, BRIEF_CLEAR_S = 0.5, 0.2
 #: (:attr:`Tracker.loose`, :attr:`Tracker.brief`) fall within
 #: SWEEP_WINDOW_S, those within SWEEP_REACH_S of their median time vote for
 #: a pass course (:func:`~passby.fitting.sweep_search`); a course with
-#: SWEEP_MIN_SCORE votes is a candidate like a brief sweep's (followed,
+#: SWEEP_MIN_SCORE votes more than the same points reversed in time get
+#: (chance agreement: the broadband noise of a passing car gives many
+#: scattered peaks) is a candidate like a brief sweep's (followed,
 #: confirmed or dropped, graded fair at best). The pieces wait
 #: SWEEP_SETTLE_S for the rest of the pass. Neither the course searched
 #: nor any candidate's fit may pass closer than CANDIDATE_MIN_CLOSEST_M: on
@@ -321,12 +323,18 @@ class Pipeline:
     def _sweep_source(self, pts: Track, centre: int):
         """The (tracks, start) of the course that ``pts`` (frame order) vote for, or None."""
         tb = self.timebase
-        hyp = sweep_search(tb.frame_time(pts.frame), pts.freq_hz, self.c, float(tb.frame_time(centre)),
-                           self.front.sigma_at(pts.freq_hz) / math.sqrt(2.0),
-                           min_closest_m=CANDIDATE_MIN_CLOSEST_M)
-        log.debug("%d scattered peaks at %.2f s vote for %.0f km/h, d %.1f m (%d votes)", pts.frame.size,
-                  tb.frame_time(centre), 3.6 * hyp.speed_mps, hyp.closest_m, hyp.score)
+        t, tc = tb.frame_time(pts.frame), float(tb.frame_time(centre))
+        sigma_p = self.front.sigma_at(pts.freq_hz) / math.sqrt(2.0)
+        hyp = sweep_search(t, pts.freq_hz, self.c, tc, sigma_p, min_closest_m=CANDIDATE_MIN_CLOSEST_M)
         if hyp.score < SWEEP_MIN_SCORE:
+            return None
+        # Chance agreement of these points: the votes of the same points
+        # reversed in time, whose pitch no longer falls at a real pass.
+        chance = sweep_search(2.0 * tc - t, pts.freq_hz, self.c, tc, sigma_p,
+                              min_closest_m=CANDIDATE_MIN_CLOSEST_M).score
+        log.debug("%d scattered peaks at %.2f s vote for %.0f km/h, d %.1f m (%d votes, %d by chance)",
+                  pts.frame.size, tc, 3.6 * hyp.speed_mps, hyp.closest_m, hyp.score, chance)
+        if hyp.score - max(chance, 0) < SWEEP_MIN_SCORE:
             return None
         tracks, rests = [], []
         for k in range(hyp.rest_hz.size):

@@ -226,7 +226,7 @@ def test_close_fast_pass_in_noise_found_from_its_brief_sweep(seed):
     assert abs(ev[0].speed_mps * 3.6 - 160.0) <= max(3.0, 0.03 * 160.0)
 
 
-@pytest.mark.parametrize("seed", [3, 5, 8])
+@pytest.mark.parametrize("seed", [5, 8, 13])
 def test_close_fast_pass_heard_in_scraps_found_by_its_course_vote(seed, monkeypatch):
     # 180 km/h at 3 m (d/v 0.06 s), SNR -5 dB, 0.3 % pitch wander, a ground reflection,
     # weak fundamental: the tones stand above the threshold for a few frames at a time,

@@ -131,6 +131,12 @@ BRIEF_CONFIRM_S, BRIEF_CLEAR_S = 0.5, 0.2
 #: chord before and after a slow, distant pass.
 SWEEP_MIN_POINTS, SWEEP_WINDOW_S, SWEEP_REACH_S = 10, 0.3, 0.4
 SWEEP_MIN_SCORE, SWEEP_SETTLE_S = 4, 0.5
+#: No vote where a track of SWEEP_TRACKED_S or more within SWEEP_REACH_S of
+#: the gathering falls by SHORT_FALL_RATIO: the tracker follows that pass.
+SWEEP_TRACKED_S = 0.2
+#: Peaks within SWEEP_TRACK_REL (log-frequency steps) of a track's pitch
+#: within SWEEP_TRACK_S of it are fragments of that tone: they do not vote.
+SWEEP_TRACK_REL, SWEEP_TRACK_S = 0.004, 1.0
 CANDIDATE_MIN_CLOSEST_M = 1.0
 
 
@@ -310,7 +316,12 @@ class Pipeline:
             if centre + reach > ready_to:
                 break   # wait for the rest of the pass
             used_to = centre + reach
+            if self._tracked_fall_near(centre, reach):
+                continue    # pieces around a pass the tracker follows
             sel = np.flatnonzero(np.abs(fr - centre) <= reach)
+            sel = sel[self._untracked(pts.take(sel))]
+            if sel.size < SWEEP_MIN_POINTS:
+                continue    # mostly fragments of tones the tracker follows
             found = self._sweep_source(pts.take(sel), centre)
             if found is not None:
                 out.append(found)
@@ -319,6 +330,42 @@ class Pipeline:
         keep_from = used_to if final else max(used_to, ready_to - reach - win)
         self._pieces = [p for p in self._pieces if p.end > keep_from]
         return out
+
+    def _untracked(self, pts: Track) -> np.ndarray:
+        """Which of ``pts`` lie on no tracked tone (within SWEEP_TRACK_REL and SWEEP_TRACK_S of a track).
+
+        A steady tone fading in or out, or sinking into the noise between
+        its tracks, leaves fragments at its own pitch: no sweep.
+        """
+        keep = np.ones(pts.frame.size, dtype=bool)
+        span = int(round(SWEEP_TRACK_S / self.timebase.hop_s))
+        lo, hi = int(pts.frame[0]) - span, int(pts.frame[-1]) + span
+        pool = [(np.asarray(o.frame), np.asarray(o.freq)) for o in self.tracker.open]
+        pool += [(tr.frame, tr.freq_hz) for tr in self._ended if tr.end >= lo]
+        for frame, freq in pool:
+            inside = (frame >= lo) & (frame <= hi)
+            if not inside.any():
+                continue
+            fq = np.unique(np.round(np.log(freq[inside]) / SWEEP_TRACK_REL))
+            near = np.isin(np.round(np.log(pts.freq_hz) / SWEEP_TRACK_REL)[:, None] + np.arange(-1, 2), fq)
+            keep &= ~near.any(axis=1)
+        return keep
+
+    def _tracked_fall_near(self, centre: int, reach: int) -> bool:
+        """Whether a track (open or recently ended) falls in pitch within ``reach`` frames of ``centre``.
+
+        The pieces around a pass that the tracker follows (a loud car's
+        broadband noise lifts many) need no vote: that pass is measured from
+        its tracks. Checking costs little; a vote costs tens of milliseconds.
+        """
+        need = max(3, int(round(SWEEP_TRACKED_S / self.timebase.hop_s)))
+        pool = [(np.asarray(o.frame), np.asarray(o.freq)) for o in self.tracker.open]
+        pool += [(tr.frame, tr.freq_hz) for tr in self._ended if tr.end >= centre - reach]
+        for frame, freq in pool:
+            inside = np.flatnonzero(np.abs(frame - centre) <= reach)
+            if inside.size >= need and freq[inside[0]] >= SHORT_FALL_RATIO * freq[inside[-1]]:
+                return True
+        return False
 
     def _sweep_source(self, pts: Track, centre: int):
         """The (tracks, start) of the course that ``pts`` (frame order) vote for, or None."""

@@ -55,3 +55,17 @@ def test_nothing_falls_no_pair():
     assert pass_ratio([], [(400.0, 1.0)]) is None
     # A fall steeper than the smallest ratio (a source at about 0.25 c) is no pass either.
     assert pass_ratio([(500.0, 1.0)], [(250.0, 1.0)]) is None
+
+
+def test_tracks_too_short_to_keep_are_set_aside_not_lost():
+    # A 0.05 s piece (5 frames of 10 ms) is too short for a track (0.3 s) and too flat
+    # for a brief sweep; it comes back in Tracker.loose, whole, for the course vote.
+    from passby.spectral import Peaks, Timebase
+    from passby.tracking import Tracker
+    tb = Timebase(0.01, 0.0)
+    tr = Tracker(tb, lambda f: 4.0)
+    frames = np.arange(100, 105)
+    pk = Peaks(frames, np.full(5, 1000.0), np.full(5, 20.0), 100, 5, np.full(5, 60.0))
+    assert tr.push(pk) == [] and tr.finish() == []
+    assert tr.brief == []
+    assert len(tr.loose) == 1 and tr.loose[0].frame.tolist() == frames.tolist()

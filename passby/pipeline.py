@@ -316,10 +316,11 @@ class Pipeline:
             if centre + reach > ready_to:
                 break   # wait for the rest of the pass
             used_to = centre + reach
-            if self._tracked_fall_near(centre, reach):
+            pool = self._track_points(centre - reach - int(round(SWEEP_TRACK_S / hop)))
+            if self._tracked_fall_near(pool, centre, reach):
                 continue    # pieces around a pass the tracker follows
             sel = np.flatnonzero(np.abs(fr - centre) <= reach)
-            sel = sel[self._untracked(pts.take(sel))]
+            sel = sel[self._untracked(pool, pts.take(sel))]
             if sel.size < SWEEP_MIN_POINTS:
                 continue    # mostly fragments of tones the tracker follows
             found = self._sweep_source(pts.take(sel), centre)
@@ -331,7 +332,12 @@ class Pipeline:
         self._pieces = [p for p in self._pieces if p.end > keep_from]
         return out
 
-    def _untracked(self, pts: Track) -> np.ndarray:
+    def _track_points(self, from_frame: int) -> list:
+        """(frames, frequencies) of the open tracks and of those ended at ``from_frame`` or later."""
+        pool = [(np.asarray(o.frame), np.asarray(o.freq)) for o in self.tracker.open]
+        return pool + [(tr.frame, tr.freq_hz) for tr in self._ended if tr.end >= from_frame]
+
+    def _untracked(self, pool: list, pts: Track) -> np.ndarray:
         """Which of ``pts`` lie on no tracked tone (within SWEEP_TRACK_REL and SWEEP_TRACK_S of a track).
 
         A steady tone fading in or out, or sinking into the noise between
@@ -340,18 +346,14 @@ class Pipeline:
         keep = np.ones(pts.frame.size, dtype=bool)
         span = int(round(SWEEP_TRACK_S / self.timebase.hop_s))
         lo, hi = int(pts.frame[0]) - span, int(pts.frame[-1]) + span
-        pool = [(np.asarray(o.frame), np.asarray(o.freq)) for o in self.tracker.open]
-        pool += [(tr.frame, tr.freq_hz) for tr in self._ended if tr.end >= lo]
+        steps = np.round(np.log(pts.freq_hz) / SWEEP_TRACK_REL)[:, None] + np.arange(-1, 2)
         for frame, freq in pool:
             inside = (frame >= lo) & (frame <= hi)
-            if not inside.any():
-                continue
-            fq = np.unique(np.round(np.log(freq[inside]) / SWEEP_TRACK_REL))
-            near = np.isin(np.round(np.log(pts.freq_hz) / SWEEP_TRACK_REL)[:, None] + np.arange(-1, 2), fq)
-            keep &= ~near.any(axis=1)
+            if inside.any():
+                keep &= ~np.isin(steps, np.round(np.log(freq[inside]) / SWEEP_TRACK_REL)).any(axis=1)
         return keep
 
-    def _tracked_fall_near(self, centre: int, reach: int) -> bool:
+    def _tracked_fall_near(self, pool: list, centre: int, reach: int) -> bool:
         """Whether a track (open or recently ended) falls in pitch within ``reach`` frames of ``centre``.
 
         The pieces around a pass that the tracker follows (a loud car's
@@ -359,8 +361,6 @@ class Pipeline:
         its tracks. Checking costs little; a vote costs tens of milliseconds.
         """
         need = max(3, int(round(SWEEP_TRACKED_S / self.timebase.hop_s)))
-        pool = [(np.asarray(o.frame), np.asarray(o.freq)) for o in self.tracker.open]
-        pool += [(tr.frame, tr.freq_hz) for tr in self._ended if tr.end >= centre - reach]
         for frame, freq in pool:
             inside = np.flatnonzero(np.abs(frame - centre) <= reach)
             if inside.size >= need and freq[inside[0]] >= SHORT_FALL_RATIO * freq[inside[-1]]:

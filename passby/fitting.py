@@ -716,9 +716,55 @@ def sweep_search(t, freq_hz, c: float, t_centre: float, sigma_p=0.0, speeds_mps=
     return SweepHypothesis(*fine)
 
 
+#: Most (hypothesis, point) pairs :func:`_sweep_votes` holds at once: its
+#: working arrays stay near 2 MiB however many points vote.
+SWEEP_BLOCK_ELEMENTS = 1 << 14
+
+
 def _sweep_votes(t, f, sigma_p, c, v, a, t0, rel_tol, min_fall, min_closest_m):
-    """The best grid point of :func:`sweep_search` over the grids ``v x a x t0``, as a tuple of its fields."""
-    V, A, T0 = (g.ravel()[:, None] for g in np.meshgrid(v, a, t0, indexing="ij"))
+    """The best grid point of :func:`sweep_search` over the grids ``v x a x t0``, as a tuple of its fields.
+
+    The grid is scored in blocks of hypotheses (SWEEP_BLOCK_ELEMENTS), so
+    that memory does not grow with the number of points; the winner's
+    groups are then formed again on its course alone.
+    """
+    V, A, T0 = (g.ravel() for g in np.meshgrid(v, a, t0, indexing="ij"))
+    step = max(1, SWEEP_BLOCK_ELEMENTS // max(t.size, 1))
+    score, spread = np.empty(V.size, dtype=np.int64), np.empty(V.size)
+    for i in range(0, V.size, step):
+        s = slice(i, i + step)
+        score[s], spread[s], _ = _course_votes(t, f, sigma_p, c, V[s], A[s], T0[s], rel_tol, min_fall,
+                                               min_closest_m)
+    # Of equal scores, the course on which the groups agree best (least
+    # summed spread of their implied rest frequencies); lexsort is stable,
+    # so exact ties go to the first in grid order, as in one block.
+    k = int(np.lexsort((spread, -score))[0])
+    _, _, (u, g_of, votes, sizes) = _course_votes(t, f, sigma_p, c, V[k:k + 1], A[k:k + 1], T0[k:k + 1],
+                                                  rel_tol, min_fall, min_closest_m)
+    voted = np.flatnonzero(votes > 0)
+    voted = voted[np.argsort(-sizes[voted], kind="stable")]
+    tone = np.full(t.size, -1, dtype=np.int64)
+    rest = []
+    for i, g in enumerate(voted):
+        mine = g_of == g
+        tone[mine] = i
+        rest.append(float(np.exp(np.median(u[mine]))))
+    return (float(V[k]), float(V[k] * A[k]), float(T0[k]), int(score[k]), tone, np.asarray(rest))
+
+
+def _course_votes(t, f, sigma_p, c, V, A, T0, rel_tol, min_fall, min_closest_m):
+    """Votes of the points ``(t, f)`` for each course ``(V, A = d / v, T0)`` (1-D arrays).
+
+    Returns
+    -------
+    score, spread : ndarray
+        Per course: the votes (-1 where it passes closer than
+        ``min_closest_m``) and the summed spread of the voting groups.
+    (u, group, votes, sizes) : tuple
+        For the last course: each point's log implied rest frequency, its
+        group, and per group the votes and the number of points.
+    """
+    V, A, T0 = V[:, None], A[:, None], T0[:, None]
     n_h, n = V.shape[0], t.size
     if np.any(sigma_p > 0):
         u = np.log(f)[None, :] - np.log(windowed_factor(t[None, :], V, V * A, T0, c, sigma_p[None, :]))
@@ -742,24 +788,9 @@ def _sweep_votes(t, f, sigma_p, c, v, a, t0, rel_tol, min_fall, min_closest_m):
     falls = np.nan_to_num(fall, nan=0.0) >= math.log(min_fall)
     votes = np.where(falls, np.maximum(np.minimum(n_before, n_after) - 1, 0), 0)
     score = np.where(V[:, 0] * A[:, 0] >= min_closest_m, votes.sum(axis=1), -1)
-    # Of equal scores, the course on which the groups agree best (least
-    # summed spread of their implied rest frequencies).
     step = np.diff(us, axis=1)
     in_voted = np.take_along_axis(votes, group[:, 1:], axis=1) > 0
     spread = np.sum(np.where((step <= rel_tol) & in_voted, step, 0.0), axis=1)
-    k = int(np.lexsort((spread, -score))[0])
-    # The groups of the winner, largest first; points of groups without votes get -1.
-    g_sorted = group[k]
     g_of = np.empty(n, dtype=np.int64)
-    g_of[order[k]] = g_sorted
-    voted = np.flatnonzero(votes[k] > 0)
-    sizes = n_before[k, voted] + n_after[k, voted]
-    voted = voted[np.argsort(-sizes, kind="stable")]
-    tone = np.full(n, -1, dtype=np.int64)
-    rest = []
-    for i, g in enumerate(voted):
-        mine = g_of == g
-        tone[mine] = i
-        rest.append(float(np.exp(np.median(u[k, mine]))))
-    return (float(V[k, 0]), float(V[k, 0] * A[k, 0]), float(T0[k, 0]), int(score[k]), tone,
-            np.asarray(rest))
+    g_of[order[-1]] = group[-1]
+    return score, spread, (u[-1], g_of, votes[-1], n_before[-1] + n_after[-1])

@@ -5,6 +5,8 @@ import math
 import numpy as np
 import pytest
 
+from passby import fitting
+
 from passby.fitting import (TrackData, error_inflation, fit_pass, plateau_fit, robust_least_squares,
                              sweep_search)
 from passby.physics import plateau_solution, received_frequency
@@ -95,10 +97,13 @@ def heard_points(emit_s, f0, v, d, t0, c):
     return emit_s + r / c, f0 * c / (c - v * cos_theta)
 
 
-def test_sweep_search_finds_the_course_of_scattered_points():
+@pytest.mark.parametrize("block", [1 << 14, 200, 1])
+def test_sweep_search_finds_the_course_of_scattered_points(block, monkeypatch):
     # A close, fast pass (150 km/h at 3 m, d/v = 0.07 s) of a 300 Hz source heard only
     # in scraps: harmonics 2 and 3 at a few emission moments either side of the pass,
-    # among random clutter and a steady line. The vote must land on the true course.
+    # among random clutter and a steady line. The vote must land on the true course,
+    # however many courses are scored at once (down to one: ``block`` = 1).
+    monkeypatch.setattr(fitting, "SWEEP_BLOCK_ELEMENTS", block)
     c, v, d, t0 = 343.2, 150 / 3.6, 3.0, 10.0
     rng = np.random.default_rng(3)
     t, f = [], []

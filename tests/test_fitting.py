@@ -6,7 +6,6 @@ import numpy as np
 import pytest
 
 from passby import fitting
-
 from passby.fitting import (TrackData, error_inflation, fit_pass, plateau_fit, robust_least_squares,
                              sweep_search)
 from passby.physics import plateau_solution, received_frequency

@@ -94,22 +94,48 @@ class _Open:
         self.freq.append(freq)
         self.snr.append(snr)
         self.level.append(level)
-        k = min(3, len(self.frame) - 1)
-        self.slope = (self.freq[-1] - self.freq[-1 - k]) / (self.frame[-1] - self.frame[-1 - k])
+        self.slope = _median_slope(self.frame, self.freq)
 
     def freeze(self) -> Track:
         return Track(np.asarray(self.frame), np.asarray(self.freq), np.asarray(self.snr),
                      np.asarray(self.level))
 
 
+def _median_slope(frame: list, freq: list) -> float:
+    """Pitch change per frame of a track's end: the median of its last three steps.
+
+    A mean over the last frames lets one step between two nearby tones (a
+    steady line beside a harmonic) set a steep fall that, carried over a
+    gap, reaches a tone an octave down; the median of three steps ignores
+    one such step.
+
+    Examples
+    --------
+    >>> round(_median_slope([0, 1, 2, 3], [100.0, 100.5, 94.0, 94.2]), 6)
+    0.2
+    """
+    n = len(frame)
+    if n < 2:
+        return 0.0
+    a = (freq[-1] - freq[-2]) / (frame[-1] - frame[-2])
+    if n == 2:
+        return a
+    b = (freq[-2] - freq[-3]) / (frame[-2] - frame[-3])
+    if n == 3:
+        return 0.5 * (a + b)
+    c = (freq[-3] - freq[-4]) / (frame[-3] - frame[-4])
+    return max(min(a, b), min(max(a, b), c))
+
+
 class Tracker:
     """Frame-to-frame continuity of spectral peaks.
 
     Each open track predicts its next frequency from its last frequency and
-    slope. A peak continues the track whose prediction is nearest, within a
-    tolerance of ``max(2 bins, rel_tol * f)`` that widens a little with the
-    gap (to twice at most) and, downwards only, with the track's fall rate: a passing source's pitch
-    only falls, and at a close pass it falls fast. A track not continued
+    slope (the median of its last three steps). A peak continues the track
+    whose prediction is nearest, within a tolerance of
+    ``max(2 bins, rel_tol * f)`` that widens a little with the gap (to
+    twice at most) and, downwards only, with the track's fall rate: a
+    passing source's pitch only falls, and at a close pass it falls fast. A track not continued
     for ``max_gap_s`` ends; tracks shorter than ``min_track_s`` are set
     aside (:attr:`brief` and :attr:`loose`), not returned.
 

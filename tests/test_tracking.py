@@ -69,3 +69,41 @@ def test_tracks_too_short_to_keep_are_set_aside_not_lost():
     assert tr.push(pk) == [] and tr.finish() == []
     assert tr.brief == []
     assert len(tr.loose) == 1 and tr.loose[0].frame.tolist() == frames.tolist()
+
+
+def _tracks_of(frames, freqs, bin_hz=1.5):
+    from passby.spectral import Peaks, Timebase
+    from passby.tracking import Tracker
+    frames, freqs = np.asarray(frames), np.asarray(freqs, dtype=float)
+    tr = Tracker(Timebase(0.01, 0.0), lambda f: bin_hz)
+    n = int(frames[-1] - frames[0] + 1)
+    pk = Peaks(frames, freqs, np.full(frames.size, 12.0), int(frames[0]), n, np.full(frames.size, 60.0))
+    return tr.push(pk) + tr.finish()
+
+
+def test_one_step_to_a_neighbouring_tone_does_not_send_a_steady_line_an_octave_down():
+    # A steady 165 Hz line whose peak is taken for a few frames by a tone gliding past
+    # 4 % above it, then a 0.28 s gap, then a tone at 86-88 Hz. One source falling from
+    # 165 to 87 Hz across a pass would move at c (r - 1) / (r + 1) = 0.31 c (moving-source
+    # Doppler relation, OpenStax College Physics sec. 17.4 eq. 17.9, from memory): the two
+    # are not one track. (The line's last three steps average -2.2 Hz per frame; carried
+    # over the gap, that mean reached the low tone.)
+    line = [165.0 + 0.3 * (-1) ** k for k in range(30)] + [170.5, 172.1, 172.9, 172.9, 172.1,
+                                                           170.6, 164.9, 165.5]
+    low = [86.4] + [87.3 + 0.1 * (-1) ** k for k in range(34)]
+    frames = list(range(100, 138)) + list(range(166, 201))
+    tracks = _tracks_of(frames, line + low, bin_hz=4.0)
+    assert sorted(t.frame.size for t in tracks) == [35, 38]
+    assert min(np.ptp(t.freq_hz) for t in tracks) < 2.0
+
+
+def test_a_close_pass_stays_one_track_across_a_dropout_at_its_pass():
+    # 500 Hz at 30 m/s passing 3 m away, by the retarded-time model (Ferguson & Quinn 1994),
+    # sampled every 10 ms over +-0.6 s with four frames missing at the pass (an
+    # interference null): the steep fall is still followed as one track.
+    c = 343.2
+    frames = np.arange(-60, 61)
+    keep = (frames < -1) | (frames > 2)
+    f = physics.received_frequency(frames * 0.01, 500.0, 30.0, 3.0, 0.0, c)
+    tracks = _tracks_of(frames[keep] + 1000, f[keep], bin_hz=2.7)
+    assert [t.frame.size for t in tracks] == [int(keep.sum())]

@@ -77,67 +77,49 @@ class Track:
                      np.r_[self.snr_db, later.snr_db], lv)
 
 
+#: The smallest ratio by which a source's pitch falls across its whole pass:
+#: (c - v) / (c + v) = 0.6 for a source at 0.25 c (about 300 km/h; the
+#: moving-source Doppler relation). No track falls below this fraction of
+#: its highest pitch, and no pairing across a pass assumes a steeper fall.
+MIN_PASS_RATIO = 0.6
+
+
 class _Open:
     """A track still being followed (mutable, internal)."""
 
-    __slots__ = ("frame", "freq", "snr", "level", "slope")
+    __slots__ = ("frame", "freq", "snr", "level", "slope", "top")
 
     def __init__(self, frame, freq, snr, level):
         self.frame, self.freq, self.snr, self.level = [frame], [freq], [snr], [level]
-        self.slope = 0.0
-
-    def predict(self, frame):
-        return self.freq[-1] + self.slope * (frame - self.frame[-1])
+        self.slope, self.top = 0.0, freq
 
     def add(self, frame, freq, snr, level):
         self.frame.append(frame)
         self.freq.append(freq)
         self.snr.append(snr)
         self.level.append(level)
-        self.slope = _median_slope(self.frame, self.freq)
+        self.top = max(self.top, freq)
+        k = min(3, len(self.frame) - 1)
+        self.slope = (self.freq[-1] - self.freq[-1 - k]) / (self.frame[-1] - self.frame[-1 - k])
 
     def freeze(self) -> Track:
         return Track(np.asarray(self.frame), np.asarray(self.freq), np.asarray(self.snr),
                      np.asarray(self.level))
 
 
-def _median_slope(frame: list, freq: list) -> float:
-    """Pitch change per frame of a track's end: the median of its last three steps.
-
-    A mean over the last frames lets one step between two nearby tones (a
-    steady line beside a harmonic) set a steep fall that, carried over a
-    gap, reaches a tone an octave down; the median of three steps ignores
-    one such step.
-
-    Examples
-    --------
-    >>> round(_median_slope([0, 1, 2, 3], [100.0, 100.5, 94.0, 94.2]), 6)
-    0.2
-    """
-    n = len(frame)
-    if n < 2:
-        return 0.0
-    a = (freq[-1] - freq[-2]) / (frame[-1] - frame[-2])
-    if n == 2:
-        return a
-    b = (freq[-2] - freq[-3]) / (frame[-2] - frame[-3])
-    if n == 3:
-        return 0.5 * (a + b)
-    c = (freq[-3] - freq[-4]) / (frame[-3] - frame[-4])
-    return max(min(a, b), min(max(a, b), c))
-
-
 class Tracker:
     """Frame-to-frame continuity of spectral peaks.
 
     Each open track predicts its next frequency from its last frequency and
-    slope (the median of its last three steps). A peak continues the track
-    whose prediction is nearest, within a tolerance of
-    ``max(2 bins, rel_tol * f)`` that widens a little with the gap (to
-    twice at most) and, downwards only, with the track's fall rate: a
-    passing source's pitch only falls, and at a close pass it falls fast. A track not continued
-    for ``max_gap_s`` ends; tracks shorter than ``min_track_s`` are set
-    aside (:attr:`brief` and :attr:`loose`), not returned.
+    slope. A peak continues the track whose prediction is nearest, within a
+    tolerance of ``max(2 bins, rel_tol * f)`` that widens a little with the
+    gap (to twice at most) and, downwards only, with the track's fall rate
+    (a passing source's pitch only falls, and at a close pass it falls
+    fast), but never below MIN_PASS_RATIO of the track's highest pitch: one
+    step between two nearby tones gives a steady line a steep slope that,
+    carried over a gap, could reach a tone an octave down. A track not
+    continued for ``max_gap_s`` ends; tracks shorter than ``min_track_s``
+    are set aside (:attr:`brief` and :attr:`loose`), not returned.
 
     Parameters
     ----------
@@ -219,10 +201,12 @@ class Tracker:
             if succ is None:
                 self._close(t, done)
             elif not crossing:   # the same tone after a dropout: one track
+                succ.top = max(succ.top, t.top)
                 n = int(np.searchsorted(t.frame, succ.frame[0]))
                 succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame[:n], t.freq[:n], t.snr[:n]
                 succ.level[:0] = t.level[:n]
             else:   # two pieces of one pass that overlap: the overlap is ambiguous, drop it
+                succ.top = max(succ.top, t.top)
                 n = int(np.searchsorted(t.frame, succ.frame[0]))
                 m = int(np.searchsorted(succ.frame, t.frame[-1], side="right"))
                 del succ.frame[:m], succ.freq[:m], succ.snr[:m], succ.level[:m]
@@ -261,6 +245,8 @@ class Tracker:
             slope = (ref_f - t.freq[n - 1 - k]) / (ref_frame - t.frame[n - 1 - k])
             pred = max(ref_f + slope * (s - ref_frame), 0.5 * ref_f)
             tol = max(2.0 * self.bin_hz_at(ref_f), 0.05 * ref_f)
+            if o.freq[0] < MIN_PASS_RATIO * t.top:
+                continue
             if s > end - self.max_overlap and abs(o.freq[0] - pred) <= tol and o.freq[0] <= ref_f * 1.003:
                 key = (0, s - end, abs(o.freq[0] - pred))
                 cross = False
@@ -286,7 +272,7 @@ class Tracker:
             gap = frame - last
             pred = t.freq[-1] + t.slope * gap
             tol = max(2.0 * bin_hz_at(pred), rel_tol * pred) * min(1.0 + 0.1 * (gap - 1), 2.0)
-            lo = pred - tol - 2.0 * max(0.0, -t.slope) * min(gap, 3)
+            lo = max(pred - tol - 2.0 * max(0.0, -t.slope) * min(gap, 3), MIN_PASS_RATIO * t.top)
             hi = pred + tol
             for j, fj in enumerate(freqs):
                 if lo <= fj <= hi:
@@ -448,7 +434,7 @@ def fall_ratio(track: Track, part: float = 0.2) -> float:
     return float(np.median(track.freq_hz[:n]) / np.median(track.freq_hz[-n:]))
 
 
-def pass_ratio(approach, recession, min_ratio: float = 0.6, max_ratio: float = 0.95,
+def pass_ratio(approach, recession, min_ratio: float = MIN_PASS_RATIO, max_ratio: float = 0.95,
                rel_tol: float = 0.004):
     """The one ratio by which a source's tones fall across its pass.
 

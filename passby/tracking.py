@@ -79,26 +79,26 @@ class Track:
 
 #: The smallest ratio by which a source's pitch falls across its whole pass:
 #: (c - v) / (c + v) = 0.6 for a source at 0.25 c (about 300 km/h; the
-#: moving-source Doppler relation). No track falls below this fraction of
-#: its highest pitch, and no pairing across a pass assumes a steeper fall.
+#: moving-source Doppler relation). No step of a track, over any gap, falls
+#: by more (a machine spinning down falls further, but step by step), and
+#: no pairing across a pass assumes a steeper fall.
 MIN_PASS_RATIO = 0.6
 
 
 class _Open:
     """A track still being followed (mutable, internal)."""
 
-    __slots__ = ("frame", "freq", "snr", "level", "slope", "top")
+    __slots__ = ("frame", "freq", "snr", "level", "slope")
 
     def __init__(self, frame, freq, snr, level):
         self.frame, self.freq, self.snr, self.level = [frame], [freq], [snr], [level]
-        self.slope, self.top = 0.0, freq
+        self.slope = 0.0
 
     def add(self, frame, freq, snr, level):
         self.frame.append(frame)
         self.freq.append(freq)
         self.snr.append(snr)
         self.level.append(level)
-        self.top = max(self.top, freq)
         k = min(3, len(self.frame) - 1)
         self.slope = (self.freq[-1] - self.freq[-1 - k]) / (self.frame[-1] - self.frame[-1 - k])
 
@@ -115,8 +115,8 @@ class Tracker:
     tolerance of ``max(2 bins, rel_tol * f)`` that widens a little with the
     gap (to twice at most) and, downwards only, with the track's fall rate
     (a passing source's pitch only falls, and at a close pass it falls
-    fast), but never below MIN_PASS_RATIO of the track's highest pitch: one
-    step between two nearby tones gives a steady line a steep slope that,
+    fast), but never below MIN_PASS_RATIO of its last pitch: one step
+    between two nearby tones gives a steady line a steep slope that,
     carried over a gap, could reach a tone an octave down. A track not
     continued for ``max_gap_s`` ends; tracks shorter than ``min_track_s``
     are set aside (:attr:`brief` and :attr:`loose`), not returned.
@@ -201,12 +201,10 @@ class Tracker:
             if succ is None:
                 self._close(t, done)
             elif not crossing:   # the same tone after a dropout: one track
-                succ.top = max(succ.top, t.top)
                 n = int(np.searchsorted(t.frame, succ.frame[0]))
                 succ.frame[:0], succ.freq[:0], succ.snr[:0] = t.frame[:n], t.freq[:n], t.snr[:n]
                 succ.level[:0] = t.level[:n]
             else:   # two pieces of one pass that overlap: the overlap is ambiguous, drop it
-                succ.top = max(succ.top, t.top)
                 n = int(np.searchsorted(t.frame, succ.frame[0]))
                 m = int(np.searchsorted(succ.frame, t.frame[-1], side="right"))
                 del succ.frame[:m], succ.freq[:m], succ.snr[:m], succ.level[:m]
@@ -245,7 +243,7 @@ class Tracker:
             slope = (ref_f - t.freq[n - 1 - k]) / (ref_frame - t.frame[n - 1 - k])
             pred = max(ref_f + slope * (s - ref_frame), 0.5 * ref_f)
             tol = max(2.0 * self.bin_hz_at(ref_f), 0.05 * ref_f)
-            if o.freq[0] < MIN_PASS_RATIO * t.top:
+            if o.freq[0] < MIN_PASS_RATIO * ref_f:
                 continue
             if s > end - self.max_overlap and abs(o.freq[0] - pred) <= tol and o.freq[0] <= ref_f * 1.003:
                 key = (0, s - end, abs(o.freq[0] - pred))
@@ -272,7 +270,7 @@ class Tracker:
             gap = frame - last
             pred = t.freq[-1] + t.slope * gap
             tol = max(2.0 * bin_hz_at(pred), rel_tol * pred) * min(1.0 + 0.1 * (gap - 1), 2.0)
-            lo = max(pred - tol - 2.0 * max(0.0, -t.slope) * min(gap, 3), MIN_PASS_RATIO * t.top)
+            lo = max(pred - tol - 2.0 * max(0.0, -t.slope) * min(gap, 3), MIN_PASS_RATIO * t.freq[-1])
             hi = pred + tol
             for j, fj in enumerate(freqs):
                 if lo <= fj <= hi:

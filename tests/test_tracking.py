@@ -85,9 +85,10 @@ def test_one_step_to_a_neighbouring_tone_does_not_send_a_steady_line_an_octave_d
     # A steady 165 Hz line whose peak is taken for a few frames by a tone gliding past
     # 4 % above it, then a 0.28 s gap, then a tone at 86-88 Hz. The line's last three
     # steps average -2.2 Hz per frame; carried over the gap, that slope reaches the low
-    # tone. But a source falling from 173 to 86 Hz across its pass would move at
-    # c (1 - r) / (1 + r) = 0.33 c (moving-source Doppler relation, OpenStax College
-    # Physics sec. 17.4 eq. 17.9, from memory): the two are not one track.
+    # tone. But a source whose pitch falls from 165 to 86 Hz, more than across its
+    # whole pass, would move at c (1 - r) / (1 + r) = 0.31 c (moving-source Doppler
+    # relation, OpenStax College Physics sec. 17.4 eq. 17.9, from memory): the two are
+    # not one track.
     line = [165.0 + 0.3 * (-1) ** k for k in range(30)] + [170.5, 172.1, 172.9, 172.9, 172.1,
                                                            170.6, 164.9, 165.5]
     low = [86.4] + [87.3 + 0.1 * (-1) ** k for k in range(34)]

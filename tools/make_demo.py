@@ -4,8 +4,8 @@ Usage::
 
     python tools/make_demo.py [--out DIR]
 
-Every scene is an invented one: "Hollin Lane", a made-up country road
-(cars with engine harmonics), and the "Marl Vale branch", a made-up branch
+Every scene is an invented one: "Tollowmere Lane", a made-up country road
+(cars with engine harmonics), and the "Essendry Vale branch", a made-up branch
 line with a level crossing (train horn chords). The recordings are rendered
 by :mod:`passby.simulation` (retarded-time synthesis, ground reflection,
 coloured noise) with fixed seeds, so every run writes the same files byte
@@ -42,8 +42,8 @@ from passby.simulation import (  # noqa: E402
 from passby.wavio import write_wav  # noqa: E402
 
 KMH = 3.6  # km/h per m/s (exact)
-HOLLIN = "Hollin Lane (invented country road)"
-MARL = "Marl Vale branch level crossing (invented branch line)"
+TOLLOWMERE = "Tollowmere Lane (invented country road)"
+ESSENDRY = "Essendry Vale branch level crossing (invented branch line)"
 
 
 @dataclass(frozen=True)
@@ -66,7 +66,7 @@ def demos():
 
     car = Vehicle(_kmh(48.0), 6.5, 12.4, harmonic_tones(47.5, [0.15, 1.0, 0.35, 0.55, 0.2, 0.3]),
                   source_height_m=0.5, wander_rms=0.003, tyre_noise=0.25)
-    out.append(Demo("hollin_lane_car_48kmh.wav", HOLLIN,
+    out.append(Demo("tollowmere_lane_car_48kmh.wav", TOLLOWMERE,
                     "one car, engine harmonics (2nd order strongest)",
                     Scene((car,), 24.0, 16000, temperature_c=8.0, mic_height_m=1.2,
                           ground_reflection=0.7, noise="road", snr_db=15.0, seed=101),
@@ -76,7 +76,7 @@ def demos():
                    source_height_m=0.5, wander_rms=0.003, tyre_noise=0.2)
     far = Vehicle(_kmh(72.0), 8.5, 16.5, harmonic_tones(58.0, [0.1, 0.8, 0.4, 0.6, 0.3]),
                   source_height_m=0.5, wander_rms=0.003, tyre_noise=0.3)
-    out.append(Demo("hollin_lane_two_cars.wav", HOLLIN,
+    out.append(Demo("tollowmere_lane_two_cars.wav", TOLLOWMERE,
                     "two cars in opposite lanes, passes 3.5 s apart",
                     Scene((near, far), 30.0, 16000, temperature_c=8.0, mic_height_m=1.2,
                           ground_reflection=0.7, noise="road", snr_db=12.0, seed=102),
@@ -85,7 +85,7 @@ def demos():
     fast = Vehicle(_kmh(86.0), 7.0, 12.5, harmonic_tones(62.0, [0.3, 1.0, 0.45, 0.6, 0.25, 0.3]),
                    source_height_m=0.5, wander_rms=0.002, tyre_noise=0.35)
     hum = (Interferer(100.0, 0.02, wobble_rms=0.0002), Interferer(150.0, 0.008, wobble_rms=0.0002))
-    out.append(Demo("hollin_lane_car_86kmh_hum.wav", HOLLIN,
+    out.append(Demo("tollowmere_lane_car_86kmh_hum.wav", TOLLOWMERE,
                     "one car beside a substation: steady 100 Hz and 150 Hz hum",
                     Scene((fast,), 24.0, 16000, temperature_c=8.0, mic_height_m=1.2,
                           ground_reflection=0.7, noise="road", snr_db=9.0, interferers=hum,
@@ -96,7 +96,7 @@ def demos():
     horn3 = Vehicle(_kmh(95.0), 14.0, t0, (Tone(311.0, 5.0), Tone(370.0, 4.0), Tone(494.0, 3.5)),
                     source_height_m=3.8, on_s=t0 - 9.0, off_s=t0 + 3.0, ramp_s=0.08,
                     wander_rms=0.001, tyre_noise=1.2, tyre_cutoff_hz=1500.0)
-    out.append(Demo("marl_vale_horn_95kmh.wav", MARL,
+    out.append(Demo("essendry_vale_horn_95kmh.wav", ESSENDRY,
                     "train sounding a three-tone horn through the crossing",
                     Scene((horn3,), 28.0, 22050, temperature_c=8.0, mic_height_m=1.5,
                           ground_reflection=0.7, noise="road", snr_db=10.0, seed=104),
@@ -108,13 +108,13 @@ def demos():
                      Tone(523.0, 2.0)),
                     source_height_m=3.8, on_s=t0 - 10.0, off_s=t0 + 5.0, ramp_s=0.08,
                     wander_rms=0.001, tyre_noise=1.5, tyre_cutoff_hz=1500.0)
-    out.append(Demo("marl_vale_horn_118kmh.wav", MARL,
+    out.append(Demo("essendry_vale_horn_118kmh.wav", ESSENDRY,
                     "fast train, five-tone horn, far track, low SNR",
                     Scene((horn5,), 28.0, 22050, temperature_c=8.0, mic_height_m=1.5,
                           ground_reflection=0.7, noise="road", snr_db=5.0, seed=105),
                     ("train",), 0.5))
 
-    out.append(Demo("hollin_lane_noise_only.wav", HOLLIN,
+    out.append(Demo("tollowmere_lane_noise_only.wav", TOLLOWMERE,
                     "road background only: no event expected",
                     Scene((), 16.0, 16000, temperature_c=8.0, noise="road", snr_db=None,
                           noise_level=0.02, seed=106),
@@ -176,13 +176,13 @@ def readme(truth):
         "# Demo recordings",
         "",
         "Simulated recordings of invented scenes, for trying passby and for",
-        "checking it against known truth. Hollin Lane is a made-up country road",
-        "and the Marl Vale branch a made-up branch line with a level crossing; no",
+        "checking it against known truth. Tollowmere Lane is a made-up country road",
+        "and the Essendry Vale branch a made-up branch line with a level crossing; no",
         "real place, vehicle or product is depicted.",
         "",
         "Each file is mono 16-bit PCM. The true values are below and, machine",
         "readable, in `truth.json`. Give the analysis the air temperature of the",
-        "file, e.g. `passby analyze recordings_demo/hollin_lane_car_48kmh.wav",
+        "file, e.g. `passby analyze recordings_demo/tollowmere_lane_car_48kmh.wav",
         "--temperature 8`; the speed of sound the simulator used is",
         "c = 343.2 sqrt(T / 293.15 K) m/s (ISO 9613-1).",
         "",

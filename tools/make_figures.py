@@ -4,11 +4,11 @@
 
 Writes, from invented scenes only:
 
-- ``recordings_demo/hollin_lane_morning.sqlite``: a station log of a
-  made-up weekday morning on Hollin Lane (07:00-10:00 UTC, 2026-05-12):
+- ``recordings_demo/tollowmere_lane_morning.sqlite``: a station log of a
+  made-up weekday morning on Tollowmere Lane (07:00-10:00 UTC, 2026-05-12):
   each vehicle is simulated (passby.simulation) and analysed by the same
   pipeline as ``passby analyze``; its event is logged at the simulated
-  time of passing. ``hollin_lane_morning_truth.csv`` lists the true values.
+  time of passing. ``tollowmere_lane_morning_truth.csv`` lists the true values.
 - ``recordings_demo/figures/study.png``: ``passby report ... --plot``.
 - ``recordings_demo/figures/two_cars.png``: ``passby plot`` of a demo WAV.
 
@@ -29,12 +29,12 @@ import numpy as np
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 DEMO = ROOT / "recordings_demo"
 FIGURES = DEMO / "figures"
-LOG = DEMO / "hollin_lane_morning.sqlite"
-TRUTH = DEMO / "hollin_lane_morning_truth.csv"
+LOG = DEMO / "tollowmere_lane_morning.sqlite"
+TRUTH = DEMO / "tollowmere_lane_morning_truth.csv"
 START = dt.datetime(2026, 5, 12, 7, 0, 0, tzinfo=dt.timezone.utc)
 HOURS = 3
 TEMPERATURE_C = 11.0
-STATION = "hollin-lane-1"
+STATION = "tollowmere-lane-1"
 SEED = 20260512
 
 
@@ -100,7 +100,7 @@ def main() -> int:
     build_log()
     passby("report", str(LOG.relative_to(ROOT)), "--limit", "50",
            "--plot", str((FIGURES / "study.png").relative_to(ROOT)))
-    passby("plot", "recordings_demo/hollin_lane_two_cars.wav", "--temperature", "8",
+    passby("plot", "recordings_demo/tollowmere_lane_two_cars.wav", "--temperature", "8",
            "--out", str((FIGURES / "two_cars.png").relative_to(ROOT)))
     return 0
 

@@ -3,7 +3,7 @@
     python tools/update_readme.py
 
 Runs ``passby analyze recordings_demo --temperature 8`` and
-``passby report recordings_demo/hollin_lane_morning.sqlite --limit 50`` and
+``passby report recordings_demo/tollowmere_lane_morning.sqlite --limit 50`` and
 puts their output between the ``demo`` and ``report`` markers, so the
 README shows what the program prints, not what someone typed.
 """
@@ -33,8 +33,8 @@ def main() -> int:
     text = readme.read_text()
     demo = passby("analyze", "recordings_demo", "--temperature", "8")
     text = replace_between(text, "demo", f"```\n{demo.rstrip()}\n```")
-    report = passby("report", "recordings_demo/hollin_lane_morning.sqlite", "--limit", "50")
-    cmd = "$ passby report recordings_demo/hollin_lane_morning.sqlite --limit 50"
+    report = passby("report", "recordings_demo/tollowmere_lane_morning.sqlite", "--limit", "50")
+    cmd = "$ passby report recordings_demo/tollowmere_lane_morning.sqlite --limit 50"
     text = replace_between(text, "report", f"```\n{cmd}\n{report.rstrip()}\n```")
     readme.write_text(text)
     return 0

@@ -108,3 +108,14 @@ def test_a_close_pass_stays_one_track_across_a_dropout_at_its_pass():
     f = physics.received_frequency(frames * 0.01, 500.0, 30.0, 3.0, 0.0, c)
     tracks = _tracks_of(frames[keep] + 1000, f[keep], bin_hz=2.7)
     assert [t.frame.size for t in tracks] == [int(keep.sum())]
+
+
+def test_a_fan_spinning_down_falls_further_than_a_pass_but_stays_one_track():
+    # A fan line falling from 160 to 40 Hz over 3 s, frame by frame (its rotation rate
+    # decays; common practice, no source): four times further than any pass falls
+    # (MIN_PASS_RATIO), but step by step, so it stays one track, and the pipeline's
+    # level check (a spin-down gets quieter) can tell it is no pass.
+    frames = np.arange(300)
+    f = 160.0 * 0.25 ** (frames / 299.0)
+    tracks = _tracks_of(frames + 500, f, bin_hz=4.0)
+    assert [t.frame.size for t in tracks] == [300]

@@ -29,7 +29,8 @@ from collections import deque
 import numpy as np
 
 from passby.events import PassEvent
-from passby.fitting import SPEED_BOUND_C, fit_pass, sweep_search, track_data, windowed_factor
+from passby.fitting import (SPEED_BOUND_C, UNCERTAINTY_SCALE, fit_pass, sweep_search, track_data,
+                            windowed_factor)
 from passby.dechirp import course_spectrograms, follow_in_spectrogram
 from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
@@ -63,7 +64,7 @@ DISAGREE_REL = 0.08
 #: A rejected fit whose speed is more uncertain than this fraction of itself
 #: says nothing about a vehicle (a short fragment, a steady line's wobble):
 #: it is not reported at all.
-MAX_REJECTED_REL_STD = 0.3
+MAX_REJECTED_REL_STD = 0.3 * UNCERTAINTY_SCALE
 #: Following a fitted source's tones in narrow-band spectra along the fitted
 #: course (passby.dechirp): how far before the tracks' start to look (s);
 #: the s.d. of the narrow-band window (s; longer smears a wandering pitch);
@@ -84,7 +85,7 @@ FOLLOW_MIN_POWER, FOLLOW_LINE_DB = 4.0, 3.0
 FOLLOW_BACK_S = 35.0
 KEPT_S = FOLLOW_BACK_S + 35.0
 #: A good event whose speed is this certain (m/s) is not followed further.
-FOLLOW_ABOVE_STD_MPS = 0.08
+FOLLOW_ABOVE_STD_MPS = 0.08 * UNCERTAINTY_SCALE
 #: A track joins a vehicle found as a new tone when its rest frequency is
 #: this far (relative) from every tone the vehicle has.
 ADOPT_REL = 0.01

@@ -239,12 +239,12 @@ class Tracker:
             if n < 2:
                 continue
             ref_frame, ref_f = t.frame[n - 1], t.freq[n - 1]
+            if o.freq[0] < MIN_PASS_RATIO * ref_f:
+                continue    # a fall steeper than any pass's
             k = min(3, n - 1)
             slope = (ref_f - t.freq[n - 1 - k]) / (ref_frame - t.frame[n - 1 - k])
             pred = max(ref_f + slope * (s - ref_frame), 0.5 * ref_f)
             tol = max(2.0 * self.bin_hz_at(ref_f), 0.05 * ref_f)
-            if o.freq[0] < MIN_PASS_RATIO * ref_f:
-                continue
             if s > end - self.max_overlap and abs(o.freq[0] - pred) <= tol and o.freq[0] <= ref_f * 1.003:
                 key = (0, s - end, abs(o.freq[0] - pred))
                 cross = False

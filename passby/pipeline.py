@@ -637,8 +637,10 @@ class Pipeline:
     def _follow_all(self, ev: PassEvent, candidate: bool = False) -> PassEvent:
         """Following and refitting (see :meth:`_followed`); ``candidate``: follow even a rejected fit."""
         tracks = self.tracks_of.get(id(ev))
-        if not tracks or not math.isfinite(ev.speed_mps) or (ev.quality == "rejected" and not candidate):
+        if not tracks or (ev.quality == "rejected" and not candidate):
             return ev   # a rejected fit's course is no course to follow
+        if not all(math.isfinite(x) for x in (ev.speed_mps, ev.closest_approach_m, ev.pass_time_s)):
+            return ev   # no whole course (the plateaus alone give no distance): nothing to follow along
         if (not candidate and ev.quality == "good" and ev.speed_std_mps <= FOLLOW_ABOVE_STD_MPS
                 and len(tracks) == len(ev.tones_hz)):
             return ev   # measured well already: nothing to gain

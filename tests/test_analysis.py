@@ -355,3 +355,23 @@ def test_stereo_channel_selection():
     assert accepted(analyze(stereo, sample_rate=16000, channel=0)) == []
     ev = accepted(analyze(stereo, sample_rate=16000, channel=1))
     assert len(ev) == 1 and abs(ev[0].speed_mps * 3.6 - 60.0) <= 1.0
+
+
+
+def test_an_event_from_the_plateaus_alone_is_not_followed():
+    # The two-plateau closed form (Ferguson & Quinn 1994) gives a speed and a rest
+    # frequency but no closest distance: there is no whole course to follow the tones
+    # along. Following must hand such an event back as it is; it used to build a
+    # course from the NaN distance and stop the analysis with a ValueError.
+    from passby.events import PassEvent
+    from passby.tracking import Track
+    p = Pipeline(16000, AnalysisSettings())
+    p.push(np.random.default_rng(1).normal(0.0, 0.01, 16000 * 45))
+    assert p.tracker.frame > 1400           # the stream has gone past the event
+    tr = Track(np.arange(1000, 1400), np.r_[np.full(200, 1300.0), np.full(200, 1160.0)], np.full(400, 20.0))
+    ev = PassEvent(pass_time_s=12.0, speed_mps=20.0, speed_std_mps=0.8, tones_hz=(1226.3,),
+                   closest_approach_m=math.nan, closest_approach_std_m=math.nan,
+                   speed_of_sound_mps=343.2, temperature_c=20.0, quality="fair",
+                   reason="closest distance not resolved", start_s=10.0, end_s=14.0, method="plateaus")
+    p.tracks_of[id(ev)] = [tr]
+    assert p._followed(ev) is ev

@@ -120,7 +120,7 @@ NAIVE_BAND = 1.25
 
 # Sizes of the run: (main grid, hard grid, noise-only files, noise file s,
 #                    cost audio s per rate, growth lengths in minutes, timing repeats)
-FULL = dict(n_main=4000, n_hard=500, n_noise=120, noise_s=60.0, cost_s=300.0,
+FULL = dict(n_main=4000, n_hard=500, n_noise=120, noise_s=60.0, cost_s=600.0,
             growth_min=(1, 10, 60), repeats=5)
 QUICK = dict(n_main=40, n_hard=12, n_noise=4, noise_s=60.0, cost_s=60.0,
              growth_min=(1, 3), repeats=3)

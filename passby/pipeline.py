@@ -459,8 +459,8 @@ class Pipeline:
     def _explained(self, tracks, batch):
         """The vehicle already found whose fitted curve every track follows, or None."""
         for ev in list(self._recent) + self._held + batch:
-            if ev.quality == "rejected" or not math.isfinite(ev.speed_mps):
-                continue
+            if ev.quality == "rejected" or not _has_course(ev):
+                continue    # (a NaN course would let every track through)
             if all(self._follows(t, ev) for t in tracks):
                 log.debug("tracks at %.0f Hz are tones of the vehicle at %.1f s",
                           tracks[0].freq_hz.mean(), ev.pass_time_s)
@@ -639,8 +639,8 @@ class Pipeline:
         tracks = self.tracks_of.get(id(ev))
         if not tracks or (ev.quality == "rejected" and not candidate):
             return ev   # a rejected fit's course is no course to follow
-        if not all(math.isfinite(x) for x in (ev.speed_mps, ev.closest_approach_m, ev.pass_time_s)):
-            return ev   # no whole course (the plateaus alone give no distance): nothing to follow along
+        if not _has_course(ev):
+            return ev   # the plateaus alone give no distance: no course to follow along
         if (not candidate and ev.quality == "good" and ev.speed_std_mps <= FOLLOW_ABOVE_STD_MPS
                 and len(tracks) == len(ev.tones_hz)):
             return ev   # measured well already: nothing to gain
@@ -690,7 +690,7 @@ class Pipeline:
         each, are fitted. Returns None when no pair joins two different
         tracks, the refit is rejected, or the event itself was rejected.
         """
-        if ev.quality == "rejected" or not math.isfinite(ev.closest_approach_m):
+        if ev.quality == "rejected" or not _has_course(ev):
             return None     # no pass time to cut at (see _prefer_across)
         tb = self.timebase
         heard = ev.pass_time_s + ev.closest_approach_m / ev.speed_of_sound_mps
@@ -830,6 +830,15 @@ def _prefer_across(ev: PassEvent, alt: PassEvent, n_pairs: int) -> bool:
         return False
     return ((r1 <= ACROSS_RESID_RATIO * r0 and len(alt.tones_hz) >= len(ev.tones_hz))
             or (n_pairs >= 2 and r1 <= r0) or r1 < 0.5 * r0)
+
+
+def _has_course(ev: PassEvent) -> bool:
+    """Whether ``ev`` has a whole fitted course (speed, closest distance, pass time).
+
+    An event from the two plateaus alone has no closest distance: its
+    course cannot be followed, nor can a track be judged to lie on it.
+    """
+    return all(math.isfinite(x) for x in (ev.speed_mps, ev.closest_approach_m, ev.pass_time_s))
 
 
 def _merit(ev: PassEvent):

@@ -375,3 +375,6 @@ def test_an_event_from_the_plateaus_alone_is_not_followed():
                    reason="closest distance not resolved", start_s=10.0, end_s=14.0, method="plateaus")
     p.tracks_of[id(ev)] = [tr]
     assert p._followed(ev) is ev
+    # Nor can it claim another vehicle's tone in its span as one of its own.
+    other = Track(np.arange(1100, 1300), np.linspace(900.0, 800.0, 200), np.full(200, 20.0))
+    assert p._explained([other], [ev]) is None

@@ -120,6 +120,18 @@ def test_crb_of_a_case_falls_as_the_snr_rises(bench):
     assert bench.crb_speed_mps(lo) / bench.crb_speed_mps(hi) == pytest.approx(10.0, rel=1e-6)
 
 
+def test_wander_floor_is_zero_without_wander_and_grows_with_it(bench):
+    # Without wander the simulator's retarded-time pitch is the exact moving-source
+    # model (Ferguson & Quinn 1994), so the fit recovers the speed; a 0.3 % wander over
+    # a stretch of +-1 s about the pass moves it (the stretch is too short to average it).
+    p = bench.case_params("hard", 7, 1)
+    clean = dict(p, wander=0.0)
+    t0 = p["pass_time_s"]
+    assert bench.wander_floor_kmh(clean, bench.build_scene(clean), t0 - 1.0, t0 + 1.0, 1) < 1e-3
+    assert bench.wander_floor_kmh(p, bench.build_scene(p), t0 - 1.0, t0 + 1.0, 1) > 0.01
+    assert math.isnan(bench.wander_floor_kmh(p, bench.build_scene(p), t0, t0 + 0.05, 1))
+
+
 def test_readme_markers(bench, tmp_path):
     readme = tmp_path / "README.md"
     readme.write_text("intro\n<!-- bench:begin -->\nold\n<!-- bench:end -->\noutro\n")

@@ -139,6 +139,18 @@ SWEEP_TRACKED_S = 0.2
 #: within SWEEP_TRACK_S of it are fragments of that tone: they do not vote.
 SWEEP_TRACK_REL, SWEEP_TRACK_S = 0.004, 1.0
 CANDIDATE_MIN_CLOSEST_M = 1.0
+#: A slow pass heard in pieces (:meth:`Pipeline._chained`): a source whose
+#: pitch hardly falls is kept CHAIN_GAP_S (s) after its end, CHAIN_KEPT at
+#: most, for a later one to continue it; the later one must begin within
+#: CHAIN_GAP_S of its end (overlapping by CHAIN_OVERLAP_S at most) at
+#: CHAIN_RATIO times its end pitch (medians over ACROSS_EDGE_S next to
+#: the gap). The ratio spans the fall of a pass at up to about 30 km/h
+#: across the gap (2 v / c, the plateaus of the moving-source relation)
+#: and a wander of 0.3 % upwards; the other tones of the two pieces pair
+#: when their ratio is the main tones' within CHAIN_PAIR_REL.
+CHAIN_GAP_S, CHAIN_OVERLAP_S, CHAIN_KEPT = 4.0, 0.1, 16
+CHAIN_RATIO = (0.95, 1.003)
+CHAIN_PAIR_REL = 0.003
 
 
 class Pipeline:
@@ -194,6 +206,8 @@ class Pipeline:
         # Events from brief tracks, not yet confirmed, by id (the event is kept
         # too: an id alone could be reused by a later event).
         self._candidates = {}
+        # Sources whose pitch hardly falls, waiting for a piece that continues them.
+        self._flat = deque()
 
     @property
     def c(self) -> float:
@@ -415,6 +429,8 @@ class Pipeline:
                 self._adopt(owner, tracks)
                 continue
             ev = self._event(tracks)
+            if ev is None and not self._falls(tracks):
+                ev = self._chained(tracks)
             if ev is not None:
                 found.append(ev)
         for tracks, start in candidates:
@@ -510,15 +526,99 @@ class Pipeline:
         raw = float(np.percentile(np.abs(track.freq_hz - np.median(track.freq_hz)), 75))
         return spread < 0.5 * raw
 
-    def _event(self, tracks, start=None):
-        main = tracks[0]
+    def _falls(self, tracks) -> bool:
+        """Whether the source's main tone falls as a pass's does (MIN_FALL_RATIO; SHORT_FALL_RATIO if brief)."""
         span_s = (max(t.end for t in tracks) - min(t.start for t in tracks)) * self.timebase.hop_s
         needed = MIN_FALL_RATIO if span_s >= SHORT_SOURCE_S else SHORT_FALL_RATIO
-        if fall_ratio(main) < needed:
+        return fall_ratio(tracks[0]) >= needed
+
+    def _event(self, tracks, start=None):
+        if not self._falls(tracks):
+            main = tracks[0]
             log.debug("tracks at %.0f Hz from %.1f s: no Doppler fall, not a pass-by",
                       main.freq_hz.mean(), self.timebase.frame_time(main.start))
             return None
         return self._fitted(tracks, start)
+
+    def _chained(self, tracks):
+        """The event of a slow pass heard in pieces, ``tracks`` one of them; or None.
+
+        A slow vehicle's pitch falls by 2 v / c over many seconds; a fade of
+        the ground reflection or a steady line it crosses cuts its tone into
+        pieces, each too flat to be a pass. A flat source that begins within
+        CHAIN_GAP_S of a kept one's end, at CHAIN_RATIO of its end pitch,
+        continues it (or is continued by it: sources are released in no
+        particular order); the pieces are joined tone by tone, as many as
+        continue each other, and judged as one source, reported only when
+        the curve fit resolves the pass, heard across it with no gap longer
+        than its transit time d / v (not from the plateaus alone: two steady
+        machines one after the other make a step in pitch). What does
+        not fall yet, or does not fit, is kept for the next piece.
+        """
+        hop = self.timebase.hop_s
+        # The next piece may be a long one, released only once it has ended.
+        horizon = self.tracker.frame - int(round(CHAIN_GAP_S / hop)) - self.tracker.max_frames
+        while self._flat and self._flat[0][0].end < horizon:
+            self._flat.popleft()
+        edge = max(3, int(round(ACROSS_EDGE_S / hop)))
+        group = tracks
+        while True:
+            k, kept_first = self._continuing(group, edge)
+            if k is None:
+                break
+            other = self._flat[k]
+            del self._flat[k]
+            group = _joined_pieces(other, group, edge) if kept_first else _joined_pieces(group, other, edge)
+            log.debug("flat tracks at %.0f Hz from %.1f s and from %.1f s: pieces of one source",
+                      float(np.median(tracks[0].freq_hz)), self.timebase.frame_time(tracks[0].start),
+                      self.timebase.frame_time(other[0].start))
+        ev = self._fitted(group) if group is not tracks and self._falls(group) else None
+        if ev is not None and (ev.method != "curve" or ev.quality == "rejected"
+                               or not self._transit_heard(group, ev)):
+            # Pieces whose join the curve does not resolve may be two steady
+            # machines one after the other (a step in pitch fits the plateaus).
+            self.tracks_of.pop(id(ev), None)
+            log.debug("pieces from %.1f s: no pass resolved (%s)", ev.start_s, ev.reason or ev.method)
+            ev = None
+        if ev is None:
+            self._remember_flat(group)
+        return ev
+
+    def _transit_heard(self, tracks, ev) -> bool:
+        """Whether no gap of the tracks around the pass is longer than its transit time d / v.
+
+        Where the pitch was not heard for longer than that, the curve through
+        the gap is the fit's guess, not a measurement.
+        """
+        t = np.sort(np.concatenate([self.timebase.frame_time(tr.frame) for tr in tracks]))
+        heard = ev.pass_time_s + ev.closest_approach_m / ev.speed_of_sound_mps
+        before, after = t[t <= heard], t[t >= heard]
+        if not before.size or not after.size:
+            return False
+        return after[0] - before[-1] <= ev.closest_approach_m / ev.speed_mps
+
+    def _continuing(self, group, edge: int):
+        """(index in the kept flat sources, whether it comes first) of the one ``group`` continues, or (None, None)."""
+        hop = self.timebase.hop_s
+        lo, hi = -CHAIN_OVERLAP_S / hop, CHAIN_GAP_S / hop
+        head, best, best_gap = group[0], (None, None), None
+        for k, old in enumerate(self._flat):
+            main = old[0]
+            if lo <= head.start - main.end <= hi:
+                gap, a, b, first = head.start - main.end, main, head, True
+            elif lo <= main.start - head.end <= hi:
+                gap, a, b, first = main.start - head.end, head, main, False
+            else:
+                continue
+            ratio = float(np.median(b.freq_hz[:edge])) / float(np.median(a.freq_hz[-edge:]))
+            if CHAIN_RATIO[0] <= ratio <= CHAIN_RATIO[1] and (best_gap is None or gap < best_gap):
+                best, best_gap = (k, first), gap
+        return best
+
+    def _remember_flat(self, tracks):
+        self._flat.append(tracks)
+        while len(self._flat) > CHAIN_KEPT:
+            self._flat.popleft()
 
     def _fitted(self, tracks, start=None):
         """Fit a source's tracks; its event, or None when it is no pass-by.
@@ -830,6 +930,35 @@ def _prefer_across(ev: PassEvent, alt: PassEvent, n_pairs: int) -> bool:
         return False
     return ((r1 <= ACROSS_RESID_RATIO * r0 and len(alt.tones_hz) >= len(ev.tones_hz))
             or (n_pairs >= 2 and r1 <= r0) or r1 < 0.5 * r0)
+
+
+def _joined_pieces(before, after, edge: int) -> list:
+    """The tracks of two pieces of one source, each tone's pieces joined (strongest first).
+
+    The main tones (first of each) are joined; another pair is joined when
+    its ratio across the gap (end pitch before, start pitch after, medians
+    over ``edge`` frames) is the main tones' within CHAIN_PAIR_REL. Tracks
+    left unpaired stay tones of their own.
+    """
+    def ratio(a, b):
+        return float(np.median(b.freq_hz[:edge])) / float(np.median(a.freq_hz[-edge:]))
+
+    def join(a, b):
+        return a.take(np.flatnonzero(a.frame < b.start)).then(b)
+
+    rho = ratio(before[0], after[0])
+    out = [join(before[0], after[0])]
+    left = list(after[1:])
+    for a in before[1:]:
+        match = [b for b in left if b.start > a.start and abs(math.log(ratio(a, b) / rho)) < CHAIN_PAIR_REL]
+        if match:
+            b = max(match, key=lambda t: t.strength)
+            left.remove(b)
+            out.append(join(a, b))
+        else:
+            out.append(a)
+    out += left
+    return [out[0]] + sorted(out[1:], key=lambda t: -t.strength)
 
 
 def _has_course(ev: PassEvent) -> bool:

@@ -428,9 +428,7 @@ class Pipeline:
             if owner is not None:
                 self._adopt(owner, tracks)
                 continue
-            ev = self._event(tracks)
-            if ev is None and not self._falls(tracks):
-                ev = self._chained(tracks)
+            ev = self._event(tracks, chain=True)
             if ev is not None:
                 found.append(ev)
         for tracks, start in candidates:
@@ -532,12 +530,13 @@ class Pipeline:
         needed = MIN_FALL_RATIO if span_s >= SHORT_SOURCE_S else SHORT_FALL_RATIO
         return fall_ratio(tracks[0]) >= needed
 
-    def _event(self, tracks, start=None):
+    def _event(self, tracks, start=None, chain: bool = False):
+        """The event of a source, or None; ``chain``: a flat source may be a piece of a slow pass."""
         if not self._falls(tracks):
             main = tracks[0]
             log.debug("tracks at %.0f Hz from %.1f s: no Doppler fall, not a pass-by",
                       main.freq_hz.mean(), self.timebase.frame_time(main.start))
-            return None
+            return self._chained(tracks) if chain else None
         return self._fitted(tracks, start)
 
     def _chained(self, tracks):
@@ -610,7 +609,7 @@ class Pipeline:
                 gap, a, b, first = main.start - head.end, head, main, False
             else:
                 continue
-            ratio = float(np.median(b.freq_hz[:edge])) / float(np.median(a.freq_hz[-edge:]))
+            ratio = _edge_ratio(a, b, edge)
             if CHAIN_RATIO[0] <= ratio <= CHAIN_RATIO[1] and (best_gap is None or gap < best_gap):
                 best, best_gap = (k, first), gap
         return best
@@ -932,6 +931,11 @@ def _prefer_across(ev: PassEvent, alt: PassEvent, n_pairs: int) -> bool:
             or (n_pairs >= 2 and r1 <= r0) or r1 < 0.5 * r0)
 
 
+def _edge_ratio(a, b, edge: int) -> float:
+    """Pitch ratio across the gap from track ``a`` to the later ``b`` (medians of ``edge`` frames next to it)."""
+    return float(np.median(b.freq_hz[:edge])) / float(np.median(a.freq_hz[-edge:]))
+
+
 def _joined_pieces(before, after, edge: int) -> list:
     """The tracks of two pieces of one source, each tone's pieces joined (strongest first).
 
@@ -940,17 +944,15 @@ def _joined_pieces(before, after, edge: int) -> list:
     over ``edge`` frames) is the main tones' within CHAIN_PAIR_REL. Tracks
     left unpaired stay tones of their own.
     """
-    def ratio(a, b):
-        return float(np.median(b.freq_hz[:edge])) / float(np.median(a.freq_hz[-edge:]))
-
     def join(a, b):
         return a.take(np.flatnonzero(a.frame < b.start)).then(b)
 
-    rho = ratio(before[0], after[0])
+    rho = _edge_ratio(before[0], after[0], edge)
     out = [join(before[0], after[0])]
     left = list(after[1:])
     for a in before[1:]:
-        match = [b for b in left if b.start > a.start and abs(math.log(ratio(a, b) / rho)) < CHAIN_PAIR_REL]
+        match = [b for b in left
+                 if b.start > a.start and abs(math.log(_edge_ratio(a, b, edge) / rho)) < CHAIN_PAIR_REL]
         if match:
             b = max(match, key=lambda t: t.strength)
             left.remove(b)

@@ -613,10 +613,10 @@ def run_case(spec):
         if p["wander"] > 0 and math.isfinite(match.emitted_hz):
             k = int(np.argmin([abs(math.log(match.emitted_hz / f)) for f in freqs]))
             out["floor_kmh"] = wander_floor_kmh(p, scene, match.start_s, match.end_s, k)
+    k_strong = int(np.argmax([a for _, a in p["tones"]]))
     if p["wander"] > 0:
-        k = int(np.argmax([a for _, a in p["tones"]]))
-        out["floor_whole_kmh"] = wander_floor_kmh(p, scene, 0.0, p["duration_s"], k)
-    f_strong = max(p["tones"], key=lambda q: q[1])[0]
+        out["floor_whole_kmh"] = wander_floor_kmh(p, scene, 0.0, p["duration_s"], k_strong)
+    f_strong = p["tones"][k_strong][0]
     nv = naive_estimate(x, p["fs"], (f_strong / NAIVE_BAND, f_strong * NAIVE_BAND), c)
     out["naive"] = None if nv is None else dict(v_err_kmh=abs(nv.speed_mps - p["speed_mps"]) * KMH,
                                                 f_rel=_nearest_rel(nv.f0_hz, freqs),

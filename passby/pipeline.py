@@ -590,7 +590,7 @@ class Pipeline:
         the gap is the fit's guess, not a measurement.
         """
         t = np.sort(np.concatenate([self.timebase.frame_time(tr.frame) for tr in tracks]))
-        heard = ev.pass_time_s + ev.closest_approach_m / ev.speed_of_sound_mps
+        heard = _heard_at(ev)
         before, after = t[t <= heard], t[t >= heard]
         if not before.size or not after.size:
             return False
@@ -715,7 +715,7 @@ class Pipeline:
         tracks = self.tracks_of.get(id(ev), ())
         if ev.quality == "rejected" or not tracks:
             return None
-        heard = ev.pass_time_s + ev.closest_approach_m / ev.speed_of_sound_mps
+        heard = _heard_at(ev)
         t = np.concatenate([self.timebase.frame_time(tr.frame) for tr in tracks])
         need = BRIEF_CONFIRM_S / self.timebase.hop_s
         if min(np.sum(t < heard - BRIEF_CLEAR_S), np.sum(t > heard + BRIEF_CLEAR_S)) < need:
@@ -792,7 +792,7 @@ class Pipeline:
         if ev.quality == "rejected" or not _has_course(ev):
             return None     # no pass time to cut at (see _prefer_across)
         tb = self.timebase
-        heard = ev.pass_time_s + ev.closest_approach_m / ev.speed_of_sound_mps
+        heard = _heard_at(ev)
         cut = (heard - tb.t_first) / tb.hop_s
         guard, reach = ACROSS_GUARD_S / tb.hop_s, ACROSS_REACH_S / tb.hop_s
         n_min, n_edge = int(ACROSS_MIN_S / tb.hop_s), max(3, int(ACROSS_EDGE_S / tb.hop_s))
@@ -961,6 +961,11 @@ def _joined_pieces(before, after, edge: int) -> list:
             out.append(a)
     out += left
     return [out[0]] + sorted(out[1:], key=lambda t: -t.strength)
+
+
+def _heard_at(ev: PassEvent) -> float:
+    """When the sound of ``ev``'s closest approach reaches the microphone, s (``t0 + d / c``)."""
+    return ev.pass_time_s + ev.closest_approach_m / ev.speed_of_sound_mps
 
 
 def _has_course(ev: PassEvent) -> bool:

@@ -41,8 +41,10 @@ class PassEvent:
     n_frames : int
         Number of frequency samples (all tones) that entered the fit.
     method : str
-        ``"curve"`` (the exact model fitted to the whole curve) or
-        ``"plateaus"`` (closed form from the two plateaus only).
+        ``"curve"`` (the exact model fitted to the whole curve),
+        ``"plateaus"`` (closed form from the two plateaus only) or
+        ``"matched"`` (the course searched in the samples of a close, fast
+        pass, :func:`passby.matched.matched_course`; no residual).
     humidity_pct : float or None
         Relative humidity used for the speed of sound, if any.
     laf_max_db : float or None

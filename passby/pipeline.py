@@ -32,6 +32,7 @@ from passby.events import PassEvent
 from passby.fitting import (SPEED_BOUND_C, UNCERTAINTY_SCALE, fit_pass, sweep_search, track_data,
                             windowed_factor)
 from passby.dechirp import course_spectrograms, follow_in_spectrogram
+from passby.matched import matched_course
 from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
@@ -138,6 +139,16 @@ SWEEP_TRACKED_S = 0.2
 #: Peaks within SWEEP_TRACK_REL (log-frequency steps) of a track's pitch
 #: within SWEEP_TRACK_S of it are fragments of that tone: they do not vote.
 SWEEP_TRACK_REL, SWEEP_TRACK_S = 0.004, 1.0
+#: A sweep candidate that neither fits nor is confirmed by following is
+#: searched for in the samples (:func:`~passby.matched.matched_course`,
+#: within MATCHED_REACH_S of its pass); the course found stands when the
+#: tones' evidence is at least MATCHED_MIN_Z (z-score) on each side of the
+#: pass and the pass is at least CANDIDATE_MIN_CLOSEST_M away. Its speed
+#: uncertainty adds MATCHED_FLOOR_REL of the speed to that of the
+#: likelihood's curvature (pitch wander the model does not hold).
+#: A transit time d / v under MATCHED_MIN_TRANSIT_S is not resolved by the
+#: search's shortest blocks (0.05 s): a step between two unrelated tones fits it.
+MATCHED_REACH_S, MATCHED_MIN_Z, MATCHED_FLOOR_REL, MATCHED_MIN_TRANSIT_S = 0.6, 8.0, 0.015, 0.03
 CANDIDATE_MIN_CLOSEST_M = 1.0
 #: A slow pass heard in pieces (:meth:`Pipeline._chained`): a source whose
 #: pitch hardly falls is kept CHAIN_GAP_S (s) after its end, CHAIN_KEPT at
@@ -440,8 +451,12 @@ class Pipeline:
                           ev.pass_time_s, ev.closest_approach_m)
                 ev = None
             if ev is not None:
-                self._candidates[id(ev)] = ev
+                self._candidates[id(ev)] = (ev, start)
                 found.append(ev)
+            elif start is not None:
+                ev = self._matched(tracks, start)
+                if ev is not None:
+                    found.append(ev)
         # Every event waits a little in ``_held`` for other sources of the
         # same vehicle (groups of one vehicle end at different times); of
         # those the best stays, graded fair if their speeds disagree.
@@ -460,7 +475,7 @@ class Pipeline:
                                         "(a close, fast pass?)")
             self._held = [h for h in self._held if h not in twins] + [best]
         # Candidates dropped as twins of a better event are forgotten.
-        self._candidates = {k: e for k, e in self._candidates.items() if any(e is h for h in self._held)}
+        self._candidates = {k: c for k, c in self._candidates.items() if any(c[0] is h for h in self._held)}
         now = self.timebase.frame_time(self.tracker.frame)
         due = [h for h in self._held if final or now - h.end_s >
                (HOLD_REJECTED_S if h.quality == "rejected" else HOLD_S)]
@@ -701,8 +716,12 @@ class Pipeline:
         fan's wobble, two sources mixed), and noise followed along it could
         make it look usable.
         """
-        if self._candidates.pop(id(ev), None) is ev:
-            return self._confirmed(self._follow_all(ev, candidate=True))
+        cand = self._candidates.pop(id(ev), None)
+        if cand is not None and cand[0] is ev:
+            confirmed = self._confirmed(self._follow_all(ev, candidate=True))
+            if confirmed is None and cand[1] is not None:
+                return self._matched(self.tracks_of.get(id(ev), ()), cand[1])
+            return confirmed
         alt = self._across(ev)
         if alt is not None and _prefer_across(ev, *alt):
             ev = alt[0]
@@ -725,6 +744,47 @@ class Pipeline:
             # Its course came from a tenth of a second of sweep: on the
             # benchmark some such passes of horn chords were a tone off.
             ev = self._fair(ev, "found from its brief sweep at the pass only")
+        return ev
+
+    def _matched(self, tracks, start):
+        """The event of a sweep candidate from the matched search in the samples, or None.
+
+        ``start``: the vote's ``[v, d, t0, f...]``. See MATCHED_REACH_S.
+        """
+        heard = float(start[2]) + float(start[1]) / self.c
+        reach = MATCHED_REACH_S
+        y, fs, t_y0 = self.front.kept_samples(heard - reach - 0.1, heard + reach + 0.1)
+        m = matched_course(y, fs, t_y0, start, self.c, self.settings.wind_mps, reach_s=reach)
+        if m is None:
+            return None
+        log.debug("matched search from %.0f km/h, d %.1f m at %.2f s: %.1f +- %.1f km/h, d %.2f m, evidence z "
+                  "%.1f before, %.1f after, rival %.1f km/h", 3.6 * start[0], start[1], start[2], 3.6 * m.speed_mps,
+                  3.6 * m.speed_std_mps, m.closest_m, m.excess_before, m.excess_after, 3.6 * m.rival_speed_mps)
+        if (math.isfinite(m.rival_speed_mps) or min(m.excess_before, m.excess_after) < MATCHED_MIN_Z or m.closest_m < CANDIDATE_MIN_CLOSEST_M
+                or m.closest_m < MATCHED_MIN_TRANSIT_S * m.speed_mps or not math.isfinite(m.speed_std_mps)):
+            return None
+        start_s, end_s = heard - reach, heard + reach
+        ev = PassEvent(
+            pass_time_s=m.pass_time_s,
+            speed_mps=m.speed_mps,
+            speed_std_mps=math.hypot(m.speed_std_mps, MATCHED_FLOOR_REL * m.speed_mps),
+            tones_hz=m.tones_hz,
+            closest_approach_m=m.closest_m,
+            closest_approach_std_m=m.closest_std_m,
+            speed_of_sound_mps=self.c,
+            temperature_c=self.settings.temperature_c,
+            quality="fair",
+            reason="found by a matched search along its sweep at the pass only",
+            residual_hz=math.nan,
+            start_s=start_s,
+            end_s=end_s,
+            n_frames=int(sum(t.frame.size for t in tracks)),
+            method="matched",
+            humidity_pct=self.settings.humidity_pct,
+            laf_max_db=self._laf_max(start_s, end_s),
+            level_calibrated=self.settings.level_offset_db is not None,
+            dropped_blocks=self._dropped(start_s, end_s),
+        )
         return ev
 
     def _fair(self, ev: PassEvent, reason: str) -> PassEvent:

@@ -208,3 +208,18 @@ def test_quick_run_writes_the_tables(tmp_path):
     head, rows = _table_after(text, "### Growth with record length")
     assert [r[0] for r in rows] == ["1", "3"]
     assert all(_number(r[1]) > 0 for r in rows)
+
+
+@pytest.mark.parametrize("index", [337, 413])
+def test_close_fast_hard_cases_are_found_by_the_matched_search(bench, index):
+    # Two close, fast passes of the hard subset (seed 1) that only the matched search finds:
+    # the speed within the subset's target, +-3 km/h or 3 % (the OIML R 91 form, from memory)
+    from passby import analyze
+    p = bench.case_params("hard", index, 1)
+    x = render(bench.build_scene(p))
+    x *= 0.5 / np.max(np.abs(x))
+    events = analyze(x, sample_rate=p["fs"], temperature_c=p["temperature_c"]).events
+    found = [e for e in events if e.quality != "rejected"]
+    assert len(found) == 1 and found[0].method == "matched" and found[0].quality == "fair"
+    v_kmh = 3.6 * p["speed_mps"]
+    assert abs(3.6 * found[0].speed_mps - v_kmh) <= bench.oiml_tolerance_kmh(v_kmh, 3.0)

@@ -1,0 +1,397 @@
+"""Matched search along the course of a close, fast pass, on the samples themselves.
+
+At a pass whose transit time ``d / v`` is a few hundredths of a second,
+every tone falls by a fifth or more within a tenth of a second: the tracking
+spectrogram smears that sweep over many bins, and at a low signal-to-noise
+ratio only scattered peaks of it stand out. Yet the pass holds much more
+evidence than those peaks: a tone of rest frequency ``f_k`` is heard with
+the phase ``2 pi f_k F(t)``, ``F`` the integral of the Doppler factor
+(:func:`~passby.dechirp.integrated_factor`), so along the right course
+``(v, d, t0)`` the samples multiplied by ``exp(-2 pi i f_k F(t))`` hold the
+tone at 0 Hz for the whole pass, sweep and all. Summing them over blocks of
+``block_s`` (coherently within a block, in power across blocks, so that a
+slow wander of the pitch costs little) gives the generalised likelihood
+ratio of a tone of unknown amplitude and phase in each block [Kay]_; its sum
+over the tones and the blocks, maximised over the course, is the
+maximum-likelihood estimate of the course (Ferguson & Quinn's model [FQ]_,
+fitted to the waveform instead of to tracked frequencies).
+
+The search starts from a rough course (the vote of scattered peaks,
+:func:`~passby.fitting.sweep_search`): a grid around it, then the simplex
+method of Nelder & Mead [NM]_ with short blocks and again with long ones.
+Each tone's rest frequency is profiled out on a grid of offsets. The
+standard uncertainty of the speed comes from the curvature of the
+log-likelihood ratio at its maximum (the observed Fisher information).
+
+References
+----------
+.. [Kay] S. M. Kay, *Fundamentals of Statistical Signal Processing, Vol. II:
+   Detection Theory*, Prentice Hall (1998), sec. 7.6 (GLRT for a signal of
+   unknown amplitude and phase in white Gaussian noise).
+.. [FQ] B. G. Ferguson and B. G. Quinn, "Application of the short-time
+   Fourier transform and the Wigner-Ville distribution to the acoustic
+   localization of aircraft", J. Acoust. Soc. Am. 96(2), 821-827 (1994).
+.. [NM] J. A. Nelder and R. Mead, "A simplex method for function
+   minimization", Computer Journal 7(4), 308-313 (1965).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.optimize
+import scipy.signal
+
+from passby.physics import doppler_factor
+
+log = logging.getLogger(__name__)
+
+#: Block lengths of the coarse grid and of the two simplex rounds, s.
+BLOCK_COARSE_S, BLOCK_FINE_S = 0.05, (0.1, 0.25)
+#: Rest-frequency offsets profiled per tone, in units of 1 / block (grid step and half-width).
+OFFSET_STEP, OFFSET_HALF = 0.25, 1.5
+#: Offsets (units of 1 / block) at which the noise under each tone is measured.
+NOISE_OFFSETS = (-10.0, -8.0, -6.0, -4.0, 4.0, 6.0, 8.0, 10.0)
+#: Further tones tried (see :func:`_more_tones`).
+N_STARTS = 4
+#: Rival maxima (see :class:`MatchedCourse`): log-likelihood ratio margin, relative speed apart.
+RIVAL_LLR, RIVAL_REL, RIVAL_SIDE_SHARE = 15.0, 0.03, 0.75
+MORE_DENOMINATOR, MORE_MAX_RATIO, MORE_APART, MORE_MIN_Z_SIDE, MORE_MIN_HZ = 4, 4.0, 0.02, 5.0, 50.0
+
+
+@dataclass(frozen=True)
+class MatchedCourse:
+    """The course found by :func:`matched_course`.
+
+    Attributes
+    ----------
+    speed_mps, closest_m, pass_time_s : float
+        The course (``pass_time_s``: closest approach, emission time).
+    speed_std_mps, closest_std_m : float
+        Standard uncertainties from the observed Fisher information (NaN
+        when the curvature is not that of a maximum).
+    tones_hz : tuple of float
+        Rest frequency of each tone, in the order given.
+    tone_llr : tuple of float
+        Each tone's log-likelihood ratio less its expectation under noise
+        alone (its number of blocks).
+    excess_before, excess_after : float
+        Log-likelihood ratio, all tones, of the blocks heard before and after
+        the pass, less its expectation under noise alone, divided by its
+        standard deviation there (z-scores: each block's ratio is
+        exponentially distributed with mean 1 under noise).
+    rival_speed_mps : float
+        The speed of another maximum of the likelihood, reached from another
+        start, whose speed differs by more than RIVAL_REL (relative, log) and
+        whose log-likelihood ratio is within RIVAL_LLR of the best, or at
+        least RIVAL_SIDE_SHARE of it with evidence on its weaker side of the
+        pass stronger than the best's
+        (a stationary line heard near one plateau's pitch lifts a wrong
+        course on that side only); NaN when there is none. The data do not
+        tell the two courses apart.
+    """
+
+    speed_mps: float
+    closest_m: float
+    pass_time_s: float
+    speed_std_mps: float
+    closest_std_m: float
+    tones_hz: tuple
+    tone_llr: tuple
+    excess_before: float
+    excess_after: float
+    rival_speed_mps: float = math.nan
+
+
+def _basebands(y, fs, t_y0, rests, max_rate_hz):
+    """The samples shifted to 0 Hz at each rest frequency and decimated: (t, z of shape (k, n))."""
+    q = max(1, int(fs // max_rate_hz))
+    t_full = t_y0 + np.arange(y.size) / fs
+    out = []
+    for f in rests:
+        z = y * np.exp(-2j * np.pi * f * (t_full - t_y0))
+        out.append(scipy.signal.resample_poly(z, 1, q) if q > 1 else z)
+    n = min(len(z) for z in out)
+    t = t_y0 + np.arange(n) * (q / fs)
+    return t, np.array([z[:n] for z in out]), q
+
+
+class _Evidence:
+    """Log-likelihood ratio of courses, on the basebands of a set of tones."""
+
+    def __init__(self, t, z, rests, t_y0, c, wind_mps):
+        self.t, self.z, self.rests, self.t_y0 = t, z, np.asarray(rests, float), t_y0
+        self.c, self.wind = c, wind_mps
+        self.dt = t[1] - t[0] if t.size > 1 else 1.0
+        self.noise = None      # per tone, E|Y_b|^2 per sample of a block under noise
+        self.shift_hz = np.zeros(self.rests.size)   # per tone, a refinement of its rest frequency
+
+    def demodulated(self, theta):
+        v, d, t0, scale = theta
+        D = doppler_factor(self.t, v, d, t0, self.c, self.wind) * scale
+        F = np.r_[0.0, np.cumsum(0.5 * (D[1:] + D[:-1]) * self.dt)]
+        # z already had exp(-2 pi i f (t - t_y0)) taken off; take off the rest of the course.
+        tt = self.t - self.t_y0
+        y = self.z * np.exp(-2j * np.pi * (self.rests[:, None] * (F[None, :] + (tt[0] if tt.size else 0.0) - tt[None, :])
+                                            + self.shift_hz[:, None] * F[None, :]))
+        return y, F
+
+    def refine_tones(self, theta, block_s):
+        """Each tone's rest frequency moved to its own maximum along ``theta`` (within half a bin of ``block_s``)."""
+        half = 0.5 / block_s
+        for k in range(self.rests.size):
+            def minus(off, k=k):
+                keep = self.shift_hz[k]
+                self.shift_hz[k] = off
+                p, _, _ = self.block_powers(theta, block_s, (0.0,))
+                self.shift_hz[k] = keep
+                return -float(p[k].sum())
+            r = scipy.optimize.minimize_scalar(minus, bounds=(self.shift_hz[k] - half, self.shift_hz[k] + half),
+                                               method="bounded", options=dict(xatol=1e-3))
+            self.shift_hz[k] = float(r.x)
+
+    def tones_hz(self, scale):
+        """The rest frequency of each tone, Hz, at the common ``scale``."""
+        return tuple(float(f) for f in (self.rests + self.shift_hz) * scale)
+
+    def block_powers(self, theta, block_s, offsets):
+        """|block sums|^2 / block length, shape (tones, offsets, blocks), and block centre times."""
+        y, F = self.demodulated(theta)
+        b = max(1, int(round(block_s / self.dt)))
+        n = (y.shape[1] // b) * b
+        off = np.asarray(offsets, float) / (b * self.dt)
+        rot = np.exp(-2j * np.pi * off[:, None] * F[None, :n])        # (offsets, n)
+        prod = y[:, None, :n] * rot[None, :, :]
+        s = prod.reshape(y.shape[0], off.size, n // b, b).sum(axis=3)
+        tb = self.t[:n].reshape(-1, b).mean(axis=1)
+        return np.abs(s) ** 2 / b, tb, off
+
+    def measure_noise(self, theta, block_s):
+        p, _, _ = self.block_powers(theta, block_s, NOISE_OFFSETS)
+        self.noise = np.maximum(np.median(p.mean(axis=2), axis=1), 1e-300)
+
+    def llr(self, theta, block_s, best_offsets=False, grid=(0.0,)):
+        """Sum over tones of the best offset's log-likelihood ratio (and the per-tone offsets, Hz).
+
+        ``grid``: the offsets of each tone's rest frequency tried, in units of 1 / block.
+        """
+        p, tb, off = self.block_powers(theta, block_s, grid)
+        per = p.sum(axis=2) / self.noise[:, None]        # (tones, offsets)
+        k = np.argmax(per, axis=1)
+        total = float(per[np.arange(per.shape[0]), k].sum())
+        if best_offsets:
+            return total, off[k], p[np.arange(per.shape[0]), k] / self.noise[:, None], tb
+        return total
+
+
+def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
+    """The maximum-likelihood course of a close pass near a rough one.
+
+    Parameters
+    ----------
+    y : array_like
+        Samples (1-D) that hold the pass, at rate ``fs``; ``y[0]`` heard at ``t_y0`` s.
+    fs : float
+        Sampling rate, Hz.
+    t_y0 : float
+        Time of ``y[0]``, s.
+    start : sequence
+        ``[v, d, t0, f_1, ..., f_k]``: the rough course and rest frequencies
+        (m/s, m, s, Hz).
+    c : float
+        Speed of sound, m/s.
+    wind_mps : float
+        Wind component along the travel, m/s.
+    reach_s : float
+        Samples used: within ``reach_s`` of the rough pass.
+
+    Returns
+    -------
+    MatchedCourse or None
+        None when the samples do not cover the pass.
+
+    Examples
+    --------
+    A 500 Hz tone at 150 km/h passing 3 m away at 1 s, in noise:
+
+    >>> from passby.physics import doppler_factor
+
+log = logging.getLogger(__name__)
+    >>> from passby.dechirp import integrated_factor
+    >>> fs, c, v, d = 8000, 343.2, 150 / 3.6, 3.0
+    >>> t = np.arange(2 * fs) / fs
+    >>> r = np.hypot(d, v * (t - 1.0))
+    >>> x = np.sin(2 * np.pi * 500.0 * integrated_factor(t, doppler_factor(t, v, d, 1.0, c))) / r
+    >>> x += np.random.default_rng(1).normal(0.0, 0.3, t.size)
+    >>> m = matched_course(x, fs, 0.0, [0.9 * v, 1.3 * d, 1.02, 505.0], c)
+    >>> round(m.speed_mps * 3.6), round(m.closest_m, 1), round(m.tones_hz[0])
+    (150, 3.0, 500)
+    """
+    v1, d1, t1 = (float(s) for s in start[:3])
+    rests = np.asarray(start[3:], dtype=float)
+    heard = t1 + d1 / c
+    i0 = int(math.floor((heard - reach_s - t_y0) * fs))
+    i1 = int(math.ceil((heard + reach_s - t_y0) * fs))
+    if i0 < 0 or i1 > len(y) or rests.size == 0 or not (v1 > 0 and d1 > 0):
+        return None
+    seg = np.asarray(y[i0:i1], dtype=float)
+    t, z, _ = _basebands(seg, fs, t_y0 + i0 / fs, rests, 0.8 * float(rests.max()))
+    ev = _Evidence(t, z, rests, t_y0 + i0 / fs, c, wind_mps)
+    v_max = 0.45 * c
+    ev.measure_noise((v1, d1, t1, 1.0), BLOCK_COARSE_S)
+    # A grid around the rough course (its speed within 30 %, its transit
+    # time within a factor 2.2), each tone's rest frequency profiled.
+    grid = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
+    scores = []
+    for v in v1 * np.exp(np.arange(-0.3, 0.301, 0.04)):
+        if v >= v_max:
+            continue
+        for tr in (d1 / v1) * np.exp(np.arange(-0.8, 0.801, 0.2)):
+            for t0 in t1 + np.arange(-0.04, 0.0401, 0.01):
+                scores.append((ev.llr((v, tr * v, t0, 1.0), BLOCK_COARSE_S, grid=grid), (v, tr * v, t0, 1.0)))
+    scores.sort(key=lambda s: -s[0])
+    lo = np.array([math.log(0.5 * v1), math.log(0.2 * d1), t1 - 0.1, math.log(0.97)])
+    hi = np.array([math.log(v_max), math.log(5.0 * d1), t1 + 0.1, math.log(1.03)])
+
+    def to_theta(u):
+        u = np.clip(u, lo, hi)
+        return (math.exp(u[0]), math.exp(u[1]), float(u[2]), math.exp(u[3]))
+
+    def simplex(theta, block, evidence):
+        evidence.measure_noise(tuple(theta), block)
+        u0 = [math.log(theta[0]), math.log(theta[1]), theta[2], math.log(theta[3])]
+        r = scipy.optimize.minimize(lambda u: -evidence.llr(to_theta(u), block), u0, method="Nelder-Mead",
+                                    options=dict(xatol=1e-5, fatol=1e-4, maxiter=800))
+        return np.array(to_theta(r.x)), -r.fun
+
+    # The best few distinct starts, each with its tones' rest frequencies moved to their best offsets.
+    best = (-math.inf, None, None)
+    finals = []
+    starts = []
+    for s, th in scores:
+        if len(starts) == N_STARTS:
+            break
+        if all(abs(math.log(th[0] / o[0])) > 0.05 or abs(math.log(th[1] / o[1])) > 0.3 for o in starts):
+            starts.append(th)
+    for th in starts:
+        _, off, _, _ = ev.llr(th, BLOCK_COARSE_S, best_offsets=True, grid=grid)
+        my_rests = rests + off
+        more = _more_tones(seg, fs, t_y0 + i0 / fs, th, my_rests, c, wind_mps)
+        my_rests = np.r_[my_rests, more]
+        t, z, _ = _basebands(seg, fs, t_y0 + i0 / fs, my_rests, 0.8 * float(my_rests.max()))
+        e = _Evidence(t, z, my_rests, t_y0 + i0 / fs, c, wind_mps)
+        theta, _ = simplex(th, BLOCK_FINE_S[0], e)
+        e.measure_noise(tuple(theta), BLOCK_FINE_S[-1])
+        score = e.llr(tuple(theta), BLOCK_FINE_S[-1])
+        finals.append((score, tuple(float(x) for x in theta), len(my_rests), _sides(e, theta, c)[0]))
+        if score > best[0]:
+            best = (score, theta, e)
+    _, theta, ev = best
+    theta, _ = simplex(theta, BLOCK_FINE_S[-1], ev)
+    # The common scale leaves each tone's offset at the coarse grid's step:
+    # each is refined on its own, then the course once more.
+    ev.refine_tones(tuple(theta), BLOCK_FINE_S[-1])
+    theta, _ = simplex(theta, BLOCK_FINE_S[-1], ev)
+    ev.refine_tones(tuple(theta), BLOCK_FINE_S[-1])
+    tones = ev.tones_hz(theta[3])
+    # The evidence either side of the pass in short blocks (a long block
+    # straddling the pass would hold the sweep on one side only).
+    stats, per_block = _sides(ev, theta, c)
+    block = BLOCK_FINE_S[-1]
+    ev.measure_noise(tuple(theta), block)
+    cov = _inverse_curvature(lambda th: ev.llr(th, block), theta)
+    v, d, t0 = (float(x) for x in theta[:3])
+    # A rival maximum: another start that ends nearly as likely at another speed.
+    best_score = max(f[0] for f in finals)
+    best_sides = min(next(f[3] for f in finals if f[0] == best_score))
+    rivals = [f[1][0] for f in finals if (f[0] >= best_score - RIVAL_LLR or (f[0] >= RIVAL_SIDE_SHARE * best_score and min(f[3]) > best_sides))
+              and abs(math.log(f[1][0] / v)) > RIVAL_REL]
+    log.debug("matched search: maxima (llr, km/h, m, tones, z before, z after) %s",
+              [(round(f[0], 1), round(3.6 * f[1][0], 1), round(f[1][1], 2), f[2], round(f[3][0], 1), round(f[3][1], 1)) for f in finals])
+    rival = max(rivals, key=lambda r: abs(math.log(r / v))) if rivals else math.nan
+    return MatchedCourse(v, d, t0, _sd(cov, 0), _sd(cov, 1), tones,
+                         tuple(float(x) for x in per_block.sum(axis=1) - per_block.shape[1]),
+                         stats[0], stats[1], rival)
+
+
+def _more_tones(seg, fs, t0_seg, theta, rests, c, wind_mps):
+    """Rest frequencies of further tones of the source heard along ``theta``.
+
+    Engine orders and horn chords stand in simple ratios to the strongest
+    tone: each ``f_1 m / n`` (n up to MORE_DENOMINATOR, up to MORE_MAX_RATIO
+    times ``f_1``, none within MORE_APART of a tone already held) is tried
+    along the course, its offset profiled; those whose evidence reaches a
+    z-score of MORE_MIN_Z_SIDE both before and after the pass are added, at
+    their best offset (a stationary line near one plateau's pitch is heard
+    on one side only).
+    """
+    f1 = float(rests[0]) * theta[3]
+    top = min(MORE_MAX_RATIO * f1, fs / 2.0 / 1.3)
+    cands = sorted({f1 * m / n for n in range(1, MORE_DENOMINATOR + 1)
+                    for m in range(1, int(top * n / f1) + 1) if math.gcd(m, n) == 1})
+    held = [float(r) * theta[3] for r in rests]
+    cands = [f for f in cands if f >= MORE_MIN_HZ and all(abs(f - h) > MORE_APART * h for h in held)]
+    if not cands:
+        return []
+    t, z, _ = _basebands(seg, fs, t0_seg, np.asarray(cands), 0.8 * max(cands))
+    ev = _Evidence(t, z, np.asarray(cands) / theta[3], t0_seg, c, wind_mps)
+    grid = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
+    ev.measure_noise(theta, BLOCK_FINE_S[0])
+    _, off, per, tb = ev.llr(theta, BLOCK_FINE_S[0], best_offsets=True, grid=grid)
+    heard = theta[2] + theta[1] / c
+    sides = [_z(per[:, side]) for side in (tb < heard, tb > heard)]
+    z_all = np.minimum(*sides)
+    return [float(f + o / theta[3]) for f, o, zz in zip(ev.rests, off, z_all) if zz >= MORE_MIN_Z_SIDE]
+
+
+def _sides(ev, theta, c):
+    """z-scores (all tones) of the evidence before and after the pass heard along ``theta``, and the block ratios.
+
+    Short blocks (BLOCK_COARSE_S): a long block straddling the pass would
+    hold the sweep on one side only.
+    """
+    ev.measure_noise(tuple(theta), BLOCK_COARSE_S)
+    _, _, per_block, tb = ev.llr(tuple(theta), BLOCK_COARSE_S, best_offsets=True)
+    at = theta[2] + theta[1] / c
+    flat = [per_block[:, side].reshape(1, -1) for side in (tb < at, tb > at)]
+    return [float(_z(f)[0]) for f in flat], per_block
+
+
+def _z(per_block):
+    """Per tone, the z-score of the sum of block ratios (each exponential with mean 1 under noise alone)."""
+    n = per_block.shape[1]
+    return (per_block.sum(axis=1) - n) / math.sqrt(n) if n else np.full(per_block.shape[0], -math.inf)
+
+
+def _sd(cov, i):
+    return float(math.sqrt(cov[i, i])) if cov is not None and cov[i, i] > 0 else math.nan
+
+
+def _inverse_curvature(f, theta, rel=(2e-3, 2e-2, None)):
+    """Inverse of minus the Hessian of ``f`` at ``theta`` by central differences; None unless positive definite."""
+    theta = np.asarray(theta, float)
+    h = np.array([rel[0] * theta[0], rel[1] * theta[1], 2e-3 * max(theta[1] / theta[0], 1e-3), 1e-4])
+    n = theta.size
+    H = np.empty((n, n))
+    f0 = f(tuple(theta))
+    for i in range(n):
+        for j in range(i, n):
+            if i == j:
+                e = np.zeros(n)
+                e[i] = h[i]
+                H[i, i] = (f(tuple(theta + e)) - 2 * f0 + f(tuple(theta - e))) / h[i] ** 2
+            else:
+                ei, ej = np.zeros(n), np.zeros(n)
+                ei[i], ej[j] = h[i], h[j]
+                H[i, j] = H[j, i] = (f(tuple(theta + ei + ej)) - f(tuple(theta + ei - ej))
+                                     - f(tuple(theta - ei + ej)) + f(tuple(theta - ei - ej))) / (4 * h[i] * h[j])
+    try:
+        cov = np.linalg.inv(-H)
+    except np.linalg.LinAlgError:
+        return None
+    if not np.all(np.linalg.eigvalsh(0.5 * (cov + cov.T)) > 0):
+        return None
+    return cov

@@ -59,6 +59,8 @@ NOISE_OFFSETS = (-10.0, -8.0, -6.0, -4.0, 4.0, 6.0, 8.0, 10.0)
 N_STARTS = 4
 #: Rival maxima (see :class:`MatchedCourse`): log-likelihood ratio margin, relative speed apart.
 RIVAL_LLR, RIVAL_REL, RIVAL_SIDE_SHARE = 15.0, 0.03, 0.75
+#: Steady lines at the plateaus (:func:`_steady_lines`): blocks this far (s) from the pass are used.
+STEADY_GUARD_S = 0.1
 MORE_DENOMINATOR, MORE_MAX_RATIO, MORE_APART, MORE_MIN_Z_SIDE, MORE_MIN_HZ = 4, 4.0, 0.02, 5.0, 50.0
 
 
@@ -92,6 +94,12 @@ class MatchedCourse:
         (a stationary line heard near one plateau's pitch lifts a wrong
         course on that side only); NaN when there is none. The data do not
         tell the two courses apart.
+    steady_z : float
+        The strongest evidence (z-score) of a steady line at a tone's
+        plateau pitch on the side of the pass where the tone is not (its
+        approach pitch after the pass, its recession pitch before; see
+        :func:`_steady_lines`): a course drawn along a fan's or a
+        transformer's line holds it on both sides.
     """
 
     speed_mps: float
@@ -104,6 +112,7 @@ class MatchedCourse:
     excess_before: float
     excess_after: float
     rival_speed_mps: float = math.nan
+    steady_z: float = math.nan
 
 
 def _basebands(y, fs, t_y0, rests, max_rate_hz):
@@ -218,8 +227,6 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
     A 500 Hz tone at 150 km/h passing 3 m away at 1 s, in noise:
 
     >>> from passby.physics import doppler_factor
-
-log = logging.getLogger(__name__)
     >>> from passby.dechirp import integrated_factor
     >>> fs, c, v, d = 8000, 343.2, 150 / 3.6, 3.0
     >>> t = np.arange(2 * fs) / fs
@@ -312,9 +319,35 @@ log = logging.getLogger(__name__)
     log.debug("matched search: maxima (llr, km/h, m, tones, z before, z after) %s",
               [(round(f[0], 1), round(3.6 * f[1][0], 1), round(f[1][1], 2), f[2], round(f[3][0], 1), round(f[3][1], 1)) for f in finals])
     rival = max(rivals, key=lambda r: abs(math.log(r / v))) if rivals else math.nan
+    steady = _steady_lines(seg, fs, t_y0 + i0 / fs, theta, np.asarray(tones) / theta[3], c, wind_mps)
     return MatchedCourse(v, d, t0, _sd(cov, 0), _sd(cov, 1), tones,
                          tuple(float(x) for x in per_block.sum(axis=1) - per_block.shape[1]),
-                         stats[0], stats[1], rival)
+                         stats[0], stats[1], rival, steady)
+
+
+def _steady_lines(seg, fs, t0_seg, theta, rests, c, wind_mps):
+    """The strongest z-score of a steady line at a plateau pitch where the tone is not.
+
+    Each tone is heard at ``f D(-inf)`` before the pass and ``f D(+inf)``
+    after it; a course that follows a steady line (a fan, a transformer)
+    along one plateau holds that line on the other side of the pass too.
+    Each plateau pitch is tried as a fixed tone on the other side, in
+    blocks of BLOCK_FINE_S[0] beyond STEADY_GUARD_S of the pass.
+    """
+    v, d, t0, scale = (float(x) for x in theta)
+    heard = t0 + d / c
+    ends = doppler_factor(np.array([t0 - 1e6, t0 + 1e6]), v, d, t0, c, wind_mps) * scale
+    pitches = np.r_[np.asarray(rests) * ends[0], np.asarray(rests) * ends[1]]
+    t, z, _ = _basebands(seg, fs, t0_seg, pitches, 0.8 * float(pitches.max()))
+    ev = _Evidence(t, z, pitches, t0_seg, c, wind_mps)
+    still = (1e-9, d, t0, 1.0)
+    grid = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
+    ev.measure_noise(still, BLOCK_FINE_S[0])
+    _, _, per, tb = ev.llr(still, BLOCK_FINE_S[0], best_offsets=True, grid=grid)
+    n = len(rests)
+    after, before = tb > heard + STEADY_GUARD_S, tb < heard - STEADY_GUARD_S
+    zs = np.r_[_z(per[:n, after]), _z(per[n:, before])]
+    return float(np.max(zs)) if zs.size else math.nan
 
 
 def _more_tones(seg, fs, t0_seg, theta, rests, c, wind_mps):

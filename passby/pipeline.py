@@ -149,6 +149,9 @@ SWEEP_TRACK_REL, SWEEP_TRACK_S = 0.004, 1.0
 #: A transit time d / v under MATCHED_MIN_TRANSIT_S is not resolved by the
 #: search's shortest blocks (0.05 s): a step between two unrelated tones fits it.
 MATCHED_REACH_S, MATCHED_MIN_Z, MATCHED_FLOOR_REL, MATCHED_MIN_TRANSIT_S = 0.6, 8.0, 0.015, 0.03
+#: A course whose plateau pitch holds a steady line at least MATCHED_MAX_STEADY_Z
+#: (z-score) strong on the other side of the pass follows that line, not a vehicle.
+MATCHED_MAX_STEADY_Z = 8.0
 CANDIDATE_MIN_CLOSEST_M = 1.0
 #: A slow pass heard in pieces (:meth:`Pipeline._chained`): a source whose
 #: pitch hardly falls is kept CHAIN_GAP_S (s) after its end, CHAIN_KEPT at
@@ -758,9 +761,11 @@ class Pipeline:
         if m is None:
             return None
         log.debug("matched search from %.0f km/h, d %.1f m at %.2f s: %.1f +- %.1f km/h, d %.2f m, evidence z "
-                  "%.1f before, %.1f after, rival %.1f km/h", 3.6 * start[0], start[1], start[2], 3.6 * m.speed_mps,
-                  3.6 * m.speed_std_mps, m.closest_m, m.excess_before, m.excess_after, 3.6 * m.rival_speed_mps)
-        if (math.isfinite(m.rival_speed_mps) or min(m.excess_before, m.excess_after) < MATCHED_MIN_Z or m.closest_m < CANDIDATE_MIN_CLOSEST_M
+                  "%.1f before, %.1f after, rival %.1f km/h, steady line z %.1f", 3.6 * start[0], start[1], start[2], 3.6 * m.speed_mps,
+                  3.6 * m.speed_std_mps, m.closest_m, m.excess_before, m.excess_after, 3.6 * m.rival_speed_mps,
+                  m.steady_z)
+        if (math.isfinite(m.rival_speed_mps) or min(m.excess_before, m.excess_after) < MATCHED_MIN_Z
+                or not m.steady_z < MATCHED_MAX_STEADY_Z or m.closest_m < CANDIDATE_MIN_CLOSEST_M
                 or m.closest_m < MATCHED_MIN_TRANSIT_S * m.speed_mps or not math.isfinite(m.speed_std_mps)):
             return None
         start_s, end_s = heard - reach, heard + reach

@@ -210,7 +210,7 @@ def test_quick_run_writes_the_tables(tmp_path):
     assert all(_number(r[1]) > 0 for r in rows)
 
 
-@pytest.mark.parametrize("index", [337, 413])
+@pytest.mark.parametrize("index", [281, 337])
 def test_close_fast_hard_cases_are_found_by_the_matched_search(bench, index):
     # Two close, fast passes of the hard subset (seed 1) that only the matched search finds:
     # the speed within the subset's target, +-3 km/h or 3 % (the OIML R 91 form, from memory)
@@ -223,3 +223,17 @@ def test_close_fast_hard_cases_are_found_by_the_matched_search(bench, index):
     assert len(found) == 1 and found[0].method == "matched" and found[0].quality == "fair"
     v_kmh = 3.6 * p["speed_mps"]
     assert abs(3.6 * found[0].speed_mps - v_kmh) <= bench.oiml_tolerance_kmh(v_kmh, 3.0)
+
+
+def test_close_fast_pass_beside_a_steady_line_gives_no_wrong_speed(bench):
+    # Hard case 321 (seed 1): a harmonic source at 194 km/h, 3.7 m away, with a steady
+    # 1090 Hz line near its approach pitch; a course drawn along the line once gave 130 km/h.
+    # Any speed reported must be within +-3 km/h or 3 % (the OIML R 91 form, from memory)
+    from passby import analyze
+    p = bench.case_params("hard", 321, 1)
+    x = render(bench.build_scene(p))
+    x *= 0.5 / np.max(np.abs(x))
+    events = analyze(x, sample_rate=p["fs"], temperature_c=p["temperature_c"]).events
+    v_kmh = 3.6 * p["speed_mps"]
+    assert all(abs(3.6 * e.speed_mps - v_kmh) <= bench.oiml_tolerance_kmh(v_kmh, 3.0)
+               for e in events if e.quality != "rejected")

@@ -15,7 +15,7 @@ import scipy.integrate
 
 from passby.matched import matched_course
 from passby.physics import doppler_factor
-from passby.pipeline import MATCHED_MIN_Z
+from passby.pipeline import MATCHED_MAX_STEADY_Z, MATCHED_MIN_Z
 
 C = 343.2  # ISO 9613-1: 343.2 m/s at 20 C
 
@@ -47,7 +47,19 @@ def test_close_fast_pass_course_is_recovered(seed):
     assert m.tones_hz[1] == pytest.approx(960.0, rel=1e-3)
     assert min(m.excess_before, m.excess_after) >= MATCHED_MIN_Z
     assert np.isnan(m.rival_speed_mps)
+    assert m.steady_z < MATCHED_MAX_STEADY_Z
     assert 0.0 < m.speed_std_mps < 0.01 * v
+
+
+def test_steady_line_at_a_plateau_pitch_is_seen_on_the_other_side():
+    # a fan's line at the approach pitch f0 / (1 - v / c) (moving-source Doppler, any
+    # acoustics textbook): it stays after the pass, where the vehicle is heard lower
+    fs, v, d, t0 = 8000, 150 / 3.6, 3.0, 1.5
+    x = _close_pass(fs, v, d, t0, [(480.0, 1.0)], sigma=1.0, seed=7)
+    t = np.arange(x.size) / fs
+    x += 0.3 * np.cos(2.0 * np.pi * 480.0 / (1.0 - v / C) * t)
+    m = matched_course(x, fs, 0.0, [v, d, t0, 480.0], C)
+    assert m.steady_z >= MATCHED_MAX_STEADY_Z
 
 
 def test_course_of_a_pass_is_found_from_a_far_start():

@@ -55,6 +55,13 @@ BLOCK_COARSE_S, BLOCK_FINE_S = 0.05, (0.1, 0.25)
 OFFSET_STEP, OFFSET_HALF = 0.25, 1.5
 #: Offsets (units of 1 / block) at which the noise under each tone is measured.
 NOISE_OFFSETS = (-10.0, -8.0, -6.0, -4.0, 4.0, 6.0, 8.0, 10.0)
+#: The simplex stops when its points are within SIMPLEX_XATOL of one another in (ln v, ln d,
+#: t0 in s, ln scale) and within SIMPLEX_FATOL in log-likelihood ratio (well under the
+#: uncertainty: a change of 0.5 in it is one standard deviation).
+SIMPLEX_XATOL, SIMPLEX_FATOL = 1e-4, 1e-2
+#: The grid's courses are scored together in arrays of at most this many complex elements
+#: (small: large short-lived arrays make the heap of a long run grow).
+GRID_CHUNK_ELEMENTS = 1 << 17
 #: Further tones tried (see :func:`_more_tones`).
 N_STARTS = 4
 #: Rival maxima (see :class:`MatchedCourse`): log-likelihood ratio margin, relative speed apart.
@@ -118,14 +125,13 @@ class MatchedCourse:
 def _basebands(y, fs, t_y0, rests, max_rate_hz):
     """The samples shifted to 0 Hz at each rest frequency and decimated: (t, z of shape (k, n))."""
     q = max(1, int(fs // max_rate_hz))
-    t_full = t_y0 + np.arange(y.size) / fs
-    out = []
-    for f in rests:
-        z = y * np.exp(-2j * np.pi * f * (t_full - t_y0))
-        out.append(scipy.signal.resample_poly(z, 1, q) if q > 1 else z)
-    n = min(len(z) for z in out)
-    t = t_y0 + np.arange(n) * (q / fs)
-    return t, np.array([z[:n] for z in out]), q
+    rests = np.asarray(rests, dtype=float)
+    dt = np.arange(y.size) / fs
+    z = np.asarray(y)[None, :] * np.exp(-2j * np.pi * rests[:, None] * dt[None, :])
+    if q > 1:
+        z = scipy.signal.resample_poly(z, 1, q, axis=1)
+    t = t_y0 + np.arange(z.shape[1]) * (q / fs)
+    return t, z, q
 
 
 class _Evidence:
@@ -172,8 +178,10 @@ class _Evidence:
         b = max(1, int(round(block_s / self.dt)))
         n = (y.shape[1] // b) * b
         off = np.asarray(offsets, float) / (b * self.dt)
-        rot = np.exp(-2j * np.pi * off[:, None] * F[None, :n])        # (offsets, n)
-        prod = y[:, None, :n] * rot[None, :, :]
+        if off.size == 1 and off[0] == 0.0:
+            prod = y[:, None, :n]
+        else:
+            prod = y[:, None, :n] * _rotations(off, F[None, :n])[0][None, :, :]     # rotations (offsets, n)
         s = prod.reshape(y.shape[0], off.size, n // b, b).sum(axis=3)
         tb = self.t[:n].reshape(-1, b).mean(axis=1)
         return np.abs(s) ** 2 / b, tb, off
@@ -181,6 +189,32 @@ class _Evidence:
     def measure_noise(self, theta, block_s):
         p, _, _ = self.block_powers(theta, block_s, NOISE_OFFSETS)
         self.noise = np.maximum(np.median(p.mean(axis=2), axis=1), 1e-300)
+
+    def llr_many(self, thetas, block_s, grid):
+        """:meth:`llr` of many courses at once (rows of ``thetas``), in chunks of GRID_CHUNK_ELEMENTS."""
+        th = np.asarray(thetas, dtype=float).reshape(-1, 4)
+        k, n_all = self.z.shape
+        b = max(1, int(round(block_s / self.dt)))
+        n = (n_all // b) * b
+        grid = np.asarray(grid, float)
+        off = grid / (b * self.dt)
+        tt = self.t - self.t_y0
+        base = tt[0] if tt.size else 0.0
+        step = max(1, GRID_CHUNK_ELEMENTS // max(1, k * grid.size * n_all))
+        out = np.empty(th.shape[0])
+        for i in range(0, th.shape[0], step):
+            v, d, t0, scale = (th[i:i + step, j:j + 1] for j in range(4))
+            D = doppler_factor(self.t[None, :], v, d, t0, self.c, self.wind) * scale
+            F = np.concatenate([np.zeros((D.shape[0], 1)), np.cumsum(0.5 * (D[:, 1:] + D[:, :-1]) * self.dt, axis=1)],
+                               axis=1)
+            y = self.z[None] * np.exp(-2j * np.pi * (self.rests[None, :, None] * (F[:, None, :] + base - tt[None, None, :])
+                                                     + self.shift_hz[None, :, None] * F[:, None, :]))
+            rot = _rotations(off, F[:, :n])
+            prod = y[:, :, None, :n] * rot[:, None, :, :]
+            s = prod.reshape(D.shape[0], k, off.size, n // b, b).sum(axis=4)
+            per = (np.abs(s) ** 2 / b).sum(axis=3) / self.noise[None, :, None]
+            out[i:i + step] = per.max(axis=2).sum(axis=1)
+        return out
 
     def llr(self, theta, block_s, best_offsets=False, grid=(0.0,)):
         """Sum over tones of the best offset's log-likelihood ratio (and the per-tone offsets, Hz).
@@ -194,6 +228,23 @@ class _Evidence:
         if best_offsets:
             return total, off[k], p[np.arange(per.shape[0]), k] / self.noise[:, None], tb
         return total
+
+
+def _rotations(off, F):
+    """``exp(-2 pi i off_j F)`` of shape (rows of F, offsets, n) for offsets in even steps.
+
+    The powers of one complex exponential (a product per offset instead of
+    an exponential: the grid's cost); any other offsets, one by one.
+    """
+    off = np.asarray(off, dtype=float)
+    if off.size > 2 and np.allclose(np.diff(off), off[1] - off[0], rtol=1e-9, atol=0.0):
+        out = np.empty((F.shape[0], off.size, F.shape[1]), dtype=complex)
+        out[:, 0] = np.exp(-2j * np.pi * off[0] * F)
+        step = np.exp(-2j * np.pi * (off[1] - off[0]) * F)
+        for j in range(1, off.size):
+            np.multiply(out[:, j - 1], step, out=out[:, j])
+        return out
+    return np.exp(-2j * np.pi * off[None, :, None] * F[:, None, :])
 
 
 def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
@@ -252,13 +303,10 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
     # A grid around the rough course (its speed within 30 %, its transit
     # time within a factor 2.2), each tone's rest frequency profiled.
     grid = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
-    scores = []
-    for v in v1 * np.exp(np.arange(-0.3, 0.301, 0.04)):
-        if v >= v_max:
-            continue
-        for tr in (d1 / v1) * np.exp(np.arange(-0.8, 0.801, 0.2)):
-            for t0 in t1 + np.arange(-0.04, 0.0401, 0.01):
-                scores.append((ev.llr((v, tr * v, t0, 1.0), BLOCK_COARSE_S, grid=grid), (v, tr * v, t0, 1.0)))
+    courses = [(v, tr * v, t0, 1.0) for v in v1 * np.exp(np.arange(-0.3, 0.301, 0.04)) if v < v_max
+               for tr in (d1 / v1) * np.exp(np.arange(-0.8, 0.801, 0.2))
+               for t0 in t1 + np.arange(-0.04, 0.0401, 0.01)]
+    scores = list(zip(ev.llr_many(courses, BLOCK_COARSE_S, grid), courses)) if courses else []
     scores.sort(key=lambda s: -s[0])
     lo = np.array([math.log(0.5 * v1), math.log(0.2 * d1), t1 - 0.1, math.log(0.97)])
     hi = np.array([math.log(v_max), math.log(5.0 * d1), t1 + 0.1, math.log(1.03)])
@@ -271,7 +319,7 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
         evidence.measure_noise(tuple(theta), block)
         u0 = [math.log(theta[0]), math.log(theta[1]), theta[2], math.log(theta[3])]
         r = scipy.optimize.minimize(lambda u: -evidence.llr(to_theta(u), block), u0, method="Nelder-Mead",
-                                    options=dict(xatol=1e-5, fatol=1e-4, maxiter=800))
+                                    options=dict(xatol=SIMPLEX_XATOL, fatol=SIMPLEX_FATOL, maxiter=800))
         return np.array(to_theta(r.x)), -r.fun
 
     # The best few distinct starts, each with its tones' rest frequencies moved to their best offsets.

@@ -86,3 +86,24 @@ def test_samples_that_do_not_cover_the_pass_give_none():
     x = np.zeros(fs)
     assert matched_course(x, fs, 0.0, [40.0, 3.0, 0.9, 700.0], C) is None     # pass + 0.6 s beyond the end
     assert matched_course(x, fs, 0.0, [40.0, 3.0, 0.5], C) is None            # no tone
+
+
+def test_grid_of_courses_scores_as_each_course_alone():
+    # the batched grid (powers of one complex exponential per offset step) against
+    # numpy's exp evaluated course by course: the same log-likelihood ratios
+    from passby.matched import _basebands, _Evidence, _rotations
+    fs, v, d, t0 = 8000, 150 / 3.6, 3.0, 0.7
+    x = _close_pass(fs, v, d, t0, [(600.0, 1.0), (900.0, 0.5)], sigma=0.5, seed=8, dur=1.4)
+    rests = np.array([603.0, 905.0])
+    t, z, _ = _basebands(x, fs, 0.0, rests, 0.8 * rests.max())
+    ev = _Evidence(t, z, rests, 0.0, C, 0.0)
+    ev.measure_noise((v, d, t0, 1.0), 0.05)
+    grid = np.arange(-1.5, 1.5001, 0.25)
+    courses = [(v * a, d * b, t0 + s, 1.0) for a in (0.8, 1.0, 1.2) for b in (0.6, 1.0) for s in (-0.02, 0.0)]
+    many = ev.llr_many(courses, 0.05, grid)
+    one = np.array([ev.llr(th, 0.05, grid=grid) for th in courses])
+    np.testing.assert_allclose(many, one, rtol=1e-10)
+    F = np.linspace(0.0, 1.4, 50)[None, :]
+    off = np.array([-3.0, -1.0, 1.0, 3.0])
+    np.testing.assert_allclose(_rotations(off, F), np.exp(-2j * np.pi * off[None, :, None] * F[:, None, :]),
+                               rtol=0, atol=1e-12)

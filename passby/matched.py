@@ -123,15 +123,20 @@ class MatchedCourse:
 
 
 def _basebands(y, fs, t_y0, rests, max_rate_hz):
-    """The samples shifted to 0 Hz at each rest frequency and decimated: (t, z of shape (k, n))."""
+    """The samples shifted to 0 Hz at each rest frequency and decimated: (t, z of shape (k, n)).
+
+    One tone at a time: the full-rate complex samples of all tones at once
+    would take megabytes on the station's small board.
+    """
     q = max(1, int(fs // max_rate_hz))
-    rests = np.asarray(rests, dtype=float)
     dt = np.arange(y.size) / fs
-    z = np.asarray(y)[None, :] * np.exp(-2j * np.pi * rests[:, None] * dt[None, :])
-    if q > 1:
-        z = scipy.signal.resample_poly(z, 1, q, axis=1)
-    t = t_y0 + np.arange(z.shape[1]) * (q / fs)
-    return t, z, q
+    out = []
+    for f in rests:
+        z = np.asarray(y) * np.exp(-2j * np.pi * float(f) * dt)
+        out.append(scipy.signal.resample_poly(z, 1, q) if q > 1 else z)
+    n = min(len(z) for z in out)
+    t = t_y0 + np.arange(n) * (q / fs)
+    return t, np.array([z[:n] for z in out]), q
 
 
 class _Evidence:

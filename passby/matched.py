@@ -53,6 +53,7 @@ log = logging.getLogger(__name__)
 BLOCK_COARSE_S, BLOCK_FINE_S = 0.05, (0.1, 0.25)
 #: Rest-frequency offsets profiled per tone, in units of 1 / block (grid step and half-width).
 OFFSET_STEP, OFFSET_HALF = 0.25, 1.5
+OFFSET_GRID = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
 #: Offsets (units of 1 / block) at which the noise under each tone is measured.
 NOISE_OFFSETS = (-10.0, -8.0, -6.0, -4.0, 4.0, 6.0, 8.0, 10.0)
 #: The simplex stops when its points are within SIMPLEX_XATOL of one another in (ln v, ln d,
@@ -62,12 +63,13 @@ SIMPLEX_XATOL, SIMPLEX_FATOL = 1e-4, 1e-2
 #: The grid's courses are scored together in arrays of at most this many complex elements
 #: (small: large short-lived arrays make the heap of a long run grow).
 GRID_CHUNK_ELEMENTS = 1 << 17
-#: Further tones tried (see :func:`_more_tones`).
+#: Distinct starts of the simplex taken from the grid.
 N_STARTS = 4
 #: Rival maxima (see :class:`MatchedCourse`): log-likelihood ratio margin, relative speed apart.
 RIVAL_LLR, RIVAL_REL, RIVAL_SIDE_SHARE = 15.0, 0.03, 0.75
 #: Steady lines at the plateaus (:func:`_steady_lines`): blocks this far (s) from the pass are used.
 STEADY_GUARD_S = 0.1
+#: Further tones tried (see :func:`_more_tones`).
 MORE_DENOMINATOR, MORE_MAX_RATIO, MORE_APART, MORE_MIN_Z_SIDE, MORE_MIN_HZ = 4, 4.0, 0.02, 5.0, 50.0
 
 
@@ -122,6 +124,11 @@ class MatchedCourse:
     steady_z: float = math.nan
 
 
+def heard_s(course, c):
+    """When the pass of ``course`` (``v, d, t0, ...``) is heard: ``t0 + d / c``, s."""
+    return float(course[2]) + float(course[1]) / c
+
+
 def _basebands(y, fs, t_y0, rests, max_rate_hz):
     """The samples shifted to 0 Hz at each rest frequency and decimated: (t, z of shape (k, n)).
 
@@ -149,14 +156,18 @@ class _Evidence:
         self.noise = None      # per tone, E|Y_b|^2 per sample of a block under noise
         self.shift_hz = np.zeros(self.rests.size)   # per tone, a refinement of its rest frequency
 
-    def demodulated(self, theta):
-        v, d, t0, scale = theta
-        D = doppler_factor(self.t, v, d, t0, self.c, self.wind) * scale
-        F = np.r_[0.0, np.cumsum(0.5 * (D[1:] + D[:-1]) * self.dt)]
+    def demodulated(self, thetas):
+        """The basebands along each course (rows of ``thetas``): y of shape (courses, tones, n), F of (courses, n)."""
+        th = np.asarray(thetas, dtype=float).reshape(-1, 4)
+        v, d, t0, scale = (th[:, j:j + 1] for j in range(4))
+        D = doppler_factor(self.t[None, :], v, d, t0, self.c, self.wind) * scale
+        F = np.concatenate([np.zeros((D.shape[0], 1)), np.cumsum(0.5 * (D[:, 1:] + D[:, :-1]) * self.dt, axis=1)],
+                           axis=1)
         # z already had exp(-2 pi i f (t - t_y0)) taken off; take off the rest of the course.
         tt = self.t - self.t_y0
-        y = self.z * np.exp(-2j * np.pi * (self.rests[:, None] * (F[None, :] + (tt[0] if tt.size else 0.0) - tt[None, :])
-                                            + self.shift_hz[:, None] * F[None, :]))
+        base = tt[0] if tt.size else 0.0
+        y = self.z[None] * np.exp(-2j * np.pi * (self.rests[None, :, None] * (F[:, None, :] + base - tt[None, None, :])
+                                                 + self.shift_hz[None, :, None] * F[:, None, :]))
         return y, F
 
     def refine_tones(self, theta, block_s):
@@ -180,6 +191,7 @@ class _Evidence:
     def block_powers(self, theta, block_s, offsets):
         """|block sums|^2 / block length, shape (tones, offsets, blocks), and block centre times."""
         y, F = self.demodulated(theta)
+        y, F = y[0], F[0]
         b = max(1, int(round(block_s / self.dt)))
         n = (y.shape[1] // b) * b
         off = np.asarray(offsets, float) / (b * self.dt)
@@ -203,20 +215,13 @@ class _Evidence:
         n = (n_all // b) * b
         grid = np.asarray(grid, float)
         off = grid / (b * self.dt)
-        tt = self.t - self.t_y0
-        base = tt[0] if tt.size else 0.0
         step = max(1, GRID_CHUNK_ELEMENTS // max(1, k * grid.size * n_all))
         out = np.empty(th.shape[0])
         for i in range(0, th.shape[0], step):
-            v, d, t0, scale = (th[i:i + step, j:j + 1] for j in range(4))
-            D = doppler_factor(self.t[None, :], v, d, t0, self.c, self.wind) * scale
-            F = np.concatenate([np.zeros((D.shape[0], 1)), np.cumsum(0.5 * (D[:, 1:] + D[:, :-1]) * self.dt, axis=1)],
-                               axis=1)
-            y = self.z[None] * np.exp(-2j * np.pi * (self.rests[None, :, None] * (F[:, None, :] + base - tt[None, None, :])
-                                                     + self.shift_hz[None, :, None] * F[:, None, :]))
+            y, F = self.demodulated(th[i:i + step])
             rot = _rotations(off, F[:, :n])
             prod = y[:, :, None, :n] * rot[:, None, :, :]
-            s = prod.reshape(D.shape[0], k, off.size, n // b, b).sum(axis=4)
+            s = prod.reshape(F.shape[0], k, off.size, n // b, b).sum(axis=4)
             per = (np.abs(s) ** 2 / b).sum(axis=3) / self.noise[None, :, None]
             out[i:i + step] = per.max(axis=2).sum(axis=1)
         return out
@@ -295,7 +300,7 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
     """
     v1, d1, t1 = (float(s) for s in start[:3])
     rests = np.asarray(start[3:], dtype=float)
-    heard = t1 + d1 / c
+    heard = heard_s(start, c)
     i0 = int(math.floor((heard - reach_s - t_y0) * fs))
     i1 = int(math.ceil((heard + reach_s - t_y0) * fs))
     if i0 < 0 or i1 > len(y) or rests.size == 0 or not (v1 > 0 and d1 > 0):
@@ -307,7 +312,7 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
     ev.measure_noise((v1, d1, t1, 1.0), BLOCK_COARSE_S)
     # A grid around the rough course (its speed within 30 %, its transit
     # time within a factor 2.2), each tone's rest frequency profiled.
-    grid = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
+    grid = OFFSET_GRID
     courses = [(v, tr * v, t0, 1.0) for v in v1 * np.exp(np.arange(-0.3, 0.301, 0.04)) if v < v_max
                for tr in (d1 / v1) * np.exp(np.arange(-0.8, 0.801, 0.2))
                for t0 in t1 + np.arange(-0.04, 0.0401, 0.01)]
@@ -388,13 +393,13 @@ def _steady_lines(seg, fs, t0_seg, theta, rests, c, wind_mps):
     blocks of BLOCK_FINE_S[0] beyond STEADY_GUARD_S of the pass.
     """
     v, d, t0, scale = (float(x) for x in theta)
-    heard = t0 + d / c
+    heard = heard_s(theta, c)
     ends = doppler_factor(np.array([t0 - 1e6, t0 + 1e6]), v, d, t0, c, wind_mps) * scale
     pitches = np.r_[np.asarray(rests) * ends[0], np.asarray(rests) * ends[1]]
     t, z, _ = _basebands(seg, fs, t0_seg, pitches, 0.8 * float(pitches.max()))
     ev = _Evidence(t, z, pitches, t0_seg, c, wind_mps)
     still = (1e-9, d, t0, 1.0)
-    grid = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
+    grid = OFFSET_GRID
     ev.measure_noise(still, BLOCK_FINE_S[0])
     _, _, per, tb = ev.llr(still, BLOCK_FINE_S[0], best_offsets=True, grid=grid)
     n = len(rests)
@@ -424,10 +429,10 @@ def _more_tones(seg, fs, t0_seg, theta, rests, c, wind_mps):
         return []
     t, z, _ = _basebands(seg, fs, t0_seg, np.asarray(cands), 0.8 * max(cands))
     ev = _Evidence(t, z, np.asarray(cands) / theta[3], t0_seg, c, wind_mps)
-    grid = np.arange(-OFFSET_HALF, OFFSET_HALF + 1e-9, OFFSET_STEP)
+    grid = OFFSET_GRID
     ev.measure_noise(theta, BLOCK_FINE_S[0])
     _, off, per, tb = ev.llr(theta, BLOCK_FINE_S[0], best_offsets=True, grid=grid)
-    heard = theta[2] + theta[1] / c
+    heard = heard_s(theta, c)
     sides = [_z(per[:, side]) for side in (tb < heard, tb > heard)]
     z_all = np.minimum(*sides)
     return [float(f + o / theta[3]) for f, o, zz in zip(ev.rests, off, z_all) if zz >= MORE_MIN_Z_SIDE]
@@ -441,7 +446,7 @@ def _sides(ev, theta, c):
     """
     ev.measure_noise(tuple(theta), BLOCK_COARSE_S)
     _, _, per_block, tb = ev.llr(tuple(theta), BLOCK_COARSE_S, best_offsets=True)
-    at = theta[2] + theta[1] / c
+    at = heard_s(theta, c)
     flat = [per_block[:, side].reshape(1, -1) for side in (tb < at, tb > at)]
     return [float(_z(f)[0]) for f in flat], per_block
 

@@ -32,7 +32,7 @@ from passby.events import PassEvent
 from passby.fitting import (SPEED_BOUND_C, UNCERTAINTY_SCALE, fit_pass, sweep_search, track_data,
                             windowed_factor)
 from passby.dechirp import course_spectrograms, follow_in_spectrogram
-from passby.matched import matched_course
+from passby.matched import heard_s, matched_course
 from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
@@ -756,7 +756,7 @@ class Pipeline:
 
         ``start``: the vote's ``[v, d, t0, f...]``. See MATCHED_REACH_S.
         """
-        heard = float(start[2]) + float(start[1]) / self.c
+        heard = heard_s(start, self.c)
         reach = MATCHED_REACH_S
         y, fs, t_y0 = self.front.kept_samples(heard - reach - 0.1, heard + reach + 0.1)
         m = matched_course(y, fs, t_y0, start, self.c, self.settings.wind_mps, reach_s=reach)

@@ -387,14 +387,26 @@ class SourceGrouper:
         self.max_wait = int(round(max_wait_s / timebase.hop_s))
         self.min_overlap = max(5, int(round(0.4 / timebase.hop_s)))
         self.pool: list[Track] = []
+        # Whether two tracks of the pool are related, by their ids: tracks
+        # are frozen, so each pair is compared once however long it waits.
+        # Only pairs of tracks still pooled are kept, so an id is never
+        # that of a track gone and replaced.
+        self._related = {}
 
     def push(self, ended: list, open_tracks: list, frame: int, final: bool = False) -> list:
         """Add ended tracks; returns the groups (lists of Track) now complete."""
         self.pool.extend(ended)
         if not self.pool:
             return []
+        known = self._related
+
         def related(a, b):
-            return not (a.end < b.start or b.end < a.start) and same_source(a, b, self.min_overlap)
+            key = (id(a), id(b))
+            r = known.get(key)
+            if r is None:
+                r = known[key] = (not (a.end < b.start or b.end < a.start)
+                                  and same_source(a, b, self.min_overlap))
+            return r
 
         groups = linked_groups(self.pool, related)
         out, keep = [], []
@@ -413,6 +425,8 @@ class SourceGrouper:
             else:
                 keep.extend(members)
         self.pool = keep
+        alive = {id(t) for t in keep}
+        self._related = {k: r for k, r in known.items() if k[0] in alive and k[1] in alive}
         out.sort(key=lambda m: min(t.start for t in m))
         return out
 

@@ -62,7 +62,7 @@ NOISE_OFFSETS = (-10.0, -8.0, -6.0, -4.0, 4.0, 6.0, 8.0, 10.0)
 SIMPLEX_XATOL, SIMPLEX_FATOL = 1e-4, 1e-2
 #: The grid's courses are scored together in arrays of at most this many complex elements
 #: (small: large short-lived arrays make the heap of a long run grow).
-GRID_CHUNK_ELEMENTS = 1 << 17
+GRID_CHUNK_ELEMENTS = 1 << 16
 #: Distinct starts of the simplex taken from the grid.
 N_STARTS = 4
 #: Rival maxima (see :class:`MatchedCourse`): log-likelihood ratio margin, relative speed apart.
@@ -210,10 +210,14 @@ class _Evidence:
         n = (y.shape[1] // b) * b
         off = np.asarray(offsets, float) / (b * self.dt)
         if off.size == 1 and off[0] == 0.0:
-            prod = y[:, None, :n]
+            s = y[:, None, :n].reshape(y.shape[0], 1, n // b, b).sum(axis=3)
         else:
-            prod = y[:, None, :n] * _rotations(off, F[None, :n])[0][None, :, :]     # rotations (offsets, n)
-        s = prod.reshape(y.shape[0], off.size, n // b, b).sum(axis=3)
+            # One tone at a time: all tones' products at every offset at once
+            # would take megabytes that the station's small board must spare.
+            rot = _rotations(off, F[None, :n])[0]      # (offsets, n)
+            s = np.empty((y.shape[0], off.size, n // b), dtype=complex)
+            for k in range(y.shape[0]):
+                s[k] = (y[k, None, :n] * rot).reshape(off.size, n // b, b).sum(axis=2)
         tb = self.t[:n].reshape(-1, b).mean(axis=1)
         return np.abs(s) ** 2 / b, tb, off
 

@@ -107,3 +107,41 @@ def test_grid_of_courses_scores_as_each_course_alone():
     off = np.array([-3.0, -1.0, 1.0, 3.0])
     np.testing.assert_allclose(_rotations(off, F), np.exp(-2j * np.pi * off[None, :, None] * F[:, None, :]),
                                rtol=0, atol=1e-12)
+
+
+def test_baseband_of_a_tone_is_its_complex_amplitude():
+    # A cos(2 pi f t + phi) shifted by f_r is (A / 2) exp(i (2 pi (f - f_r) t + phi)) once its
+    # mirror at -(f + f_r) is filtered out (Euler's formula); the DFT basebands against that
+    # value and against scipy.signal.resample_poly (a polyphase FIR low-pass and decimation)
+    import scipy.signal
+    from passby.matched import _basebands
+    fs, n = 12000, 12001                      # not a multiple of q: the last samples are dropped
+    t = np.arange(n) / fs
+    # (the output rate is 800 Hz: each tone lies 700 Hz or more from the other's band)
+    x = 0.8 * np.cos(2 * np.pi * 1003.7 * t + 0.4) + 0.3 * np.cos(2 * np.pi * 300.0 * t)
+    rests = np.array([1000.0, 300.0])
+    tb, z, q = _basebands(x, fs, 0.25, rests, 0.8 * rests.max())
+    assert q == 15 and z.shape == (2, n // q)
+    np.testing.assert_allclose(tb, 0.25 + np.arange(n // q) * q / fs)
+    mid = slice(40, -40)                      # away from the ends (the DFT's filter is circular)
+    want = 0.4 * np.exp(1j * (2 * np.pi * 3.7 * (tb - 0.25) + 0.4))
+    np.testing.assert_allclose(z[0, mid], want[mid], atol=2e-3)
+    np.testing.assert_allclose(z[1, mid], 0.15, atol=2e-3)
+    ref = scipy.signal.resample_poly(x * np.exp(-2j * np.pi * 1000.0 * t), 1, q)
+    np.testing.assert_allclose(z[0, mid], ref[: n // q][mid], atol=5e-3)
+
+
+def test_vote_drawn_between_two_steady_lines_is_seen_before_any_search():
+    # two steady lines at the approach and recession pitches of a vote's course,
+    # f0 / (1 -+ v / c) (moving-source Doppler, any acoustics textbook): the vote's own
+    # course holds each on both sides of its pass; a real pass's course does not
+    from passby.matched import start_steady_z
+    fs, v, d, t0, f0 = 8000, 180 / 3.6, 1.8, 1.5, 580.0
+    t = np.arange(3 * fs) / fs
+    rng = np.random.default_rng(9)
+    lines = sum(0.3 * np.cos(2 * np.pi * f0 / (1.0 + s * v / C) * t) for s in (-1.0, 1.0))
+    x = lines + rng.normal(0.0, 1.0, t.size)
+    assert start_steady_z(x, fs, 0.0, [v, d, t0, f0], C) >= MATCHED_MAX_STEADY_Z
+    y = _close_pass(fs, v, 3.0, t0, [(f0, 1.0)], sigma=1.0, seed=9)
+    assert start_steady_z(y, fs, 0.0, [v, 3.0, t0, f0], C) < MATCHED_MAX_STEADY_Z
+    assert np.isnan(start_steady_z(y[: fs], fs, 0.0, [v, 3.0, t0, f0], C))   # the pass is not covered

@@ -276,15 +276,15 @@ def best_path(score: np.ndarray, max_step: int) -> np.ndarray:
     cols = np.arange(m)
     for row in range(1, n):
         best = acc.copy()
-        arg = cols.copy()
-        for s in range(1, max_step + 1):
-            left = np.r_[np.full(s, -np.inf), acc[:-s]]     # from column c - s
-            right = np.r_[acc[s:], np.full(s, -np.inf)]     # from column c + s
-            for cand, src in ((left, cols - s), (right, cols + s)):
-                better = cand > best
-                best = np.where(better, cand, best)
-                arg = np.where(better, src, arg)
-        back[row] = arg
+        arg = back[row]
+        arg[:] = cols
+        for s in range(1, min(max_step, m - 1) + 1):
+            # from column c - s (columns s..m-1), then from column c + s (0..m-s-1);
+            # views of best and arg: a later step compares with what an earlier one chose
+            for cand, to, src in ((acc[:-s], slice(s, None), cols[:-s]), (acc[s:], slice(None, -s), cols[s:])):
+                better = cand > best[to]
+                best[to][better] = cand[better]
+                arg[to][better] = src[better]
         acc = best + score[row]
     path = np.empty(n, dtype=np.int64)
     path[-1] = int(np.argmax(acc))

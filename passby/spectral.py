@@ -409,8 +409,8 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
     # (one sort on a combined key: row first, then the higher first)
     order = np.argsort(rows * 1.0e4 - np.clip(heights, -1.0e3, 1.0e3), kind="stable")
     rows, cols, heights = rows[order], cols[order], heights[order]
-    starts = np.r_[0, np.flatnonzero(np.diff(rows)) + 1]
-    rank = np.arange(rows.size) - np.repeat(starts, np.diff(np.r_[starts, rows.size]))
+    starts = np.concatenate(([0], np.flatnonzero(np.diff(rows)) + 1))
+    rank = np.arange(rows.size) - np.repeat(starts, np.diff(np.concatenate((starts, [rows.size]))))
     keep = rank < max_per_frame
     rows, cols, heights = rows[keep], cols[keep], heights[keep]
     # The whitened maximum can sit a bin off the raw one (the background is
@@ -653,7 +653,7 @@ def _split_chunks(peaks: Peaks, rows) -> list:
     """``peaks`` of consecutive chunks of ``rows`` frames each, as one :class:`Peaks` per chunk."""
     if len(rows) == 1:
         return [peaks]
-    edges = peaks.first_frame + np.cumsum(np.r_[0, rows])
+    edges = peaks.first_frame + np.cumsum(np.concatenate(([0], rows)))
     cut = np.searchsorted(peaks.frame, edges)
     return [Peaks(peaks.frame[a:b], peaks.freq_hz[a:b], peaks.snr_db[a:b], int(f), int(n), peaks.level_db[a:b])
             for a, b, f, n in zip(cut[:-1], cut[1:], edges[:-1], rows)]

@@ -159,8 +159,8 @@ class Tracker:
         done = []
         fr, f, s, lv = peaks.frame, peaks.freq_hz, peaks.snr_db, peaks.level_db
         bounds = np.flatnonzero(np.diff(fr)) + 1 if fr.size else np.empty(0, int)
-        starts = np.r_[0, bounds] if fr.size else np.empty(0, int)
-        stops = np.r_[bounds, fr.size] if fr.size else np.empty(0, int)
+        starts = np.concatenate(([0], bounds)) if fr.size else np.empty(0, int)
+        stops = np.concatenate((bounds, [fr.size])) if fr.size else np.empty(0, int)
         for a, b in zip(starts.tolist(), stops.tolist()):
             frame = int(fr[a])
             self._expire(frame, done)

@@ -294,7 +294,10 @@ def power_spectra_db(frames: np.ndarray, window: np.ndarray, geometry: FrameGeom
     -------
     ndarray, shape (n_frames, k_hi - k_lo + 3), float32
     """
-    spec = scipy.fft.rfft(frames * window, geometry.n_fft, axis=1)
+    # The windowed frames written straight into the zero-padded transform input.
+    padded = np.zeros((frames.shape[0], geometry.n_fft), dtype=np.result_type(frames, window))
+    np.multiply(frames, window, out=padded[:, : frames.shape[1]])
+    spec = scipy.fft.rfft(padded, axis=1)
     spec = spec[:, geometry.k_lo - 1: geometry.k_hi + 2]
     power = spec.real ** 2 + spec.imag ** 2
     return (10.0 * np.log10(power + np.float32(1e-30))).astype(np.float32, copy=False)
@@ -507,7 +510,10 @@ class FrameAnalyser:
         self._buf_start = 0                          # decimated index of _buf[0]
         self._next_frame = 0                         # next frame index to compute
         self._chunks = {}                            # chunk index -> p_db (frames x bins)
-        self._medians = {}                           # chunk index -> per-bin median
+        # Per-bin mean of chunk j in row j - _means_first: the windows of the
+        # background are slices of it (rows before the earliest window dropped).
+        self._means = None
+        self._means_first = 0
         self._partial = []                           # p_db rows of the chunk being filled
         self._n_chunks = 0                           # chunks completed
         self._done = 0                               # chunks whose peaks were emitted
@@ -560,7 +566,20 @@ class FrameAnalyser:
         self._chunks[j] = p_db
         # Mean of the dB values: a tone present in part of the chunk raises it,
         # which the low percentile across chunks then ignores.
-        self._medians[j] = p_db.mean(axis=0)
+        mean = p_db.mean(axis=0)
+        if self._means is None:
+            rows = self.past + self.future + self.min_chunks + 4 * self.BG_EVERY
+            self._means = np.empty((rows, mean.size), dtype=mean.dtype)
+        row = j - self._means_first
+        if row >= self._means.shape[0]:
+            # No window reaches before chunk done - past - BG_EVERY (see _window_of).
+            drop = max(0, self._done - self.past - self.BG_EVERY - self._means_first)
+            kept = self._means[drop:row]
+            rows = max(self._means.shape[0], 2 * (kept.shape[0] + 1))
+            self._means = np.concatenate([kept, np.empty((rows - kept.shape[0], mean.size), mean.dtype)])
+            self._means_first += drop
+            row -= drop
+        self._means[row] = mean
         self._n_chunks += 1
 
     def _window_of(self, j: int, n_known: int):
@@ -584,9 +603,9 @@ class FrameAnalyser:
                 lo, hi, want = self._window_of(j, self._n_chunks)
                 if not final and hi < want:
                     break
-                stack = np.stack([self._medians[k] for k in range(lo, hi + 1)], axis=1)
-                kth = int(round(self.percentile / 100.0 * (stack.shape[1] - 1)))
-                self._bg = np.partition(stack, kth, axis=1)[:, kth]
+                rows = self._means[lo - self._means_first: hi - self._means_first + 1]
+                kth = int(round(self.percentile / 100.0 * (rows.shape[0] - 1)))
+                self._bg = np.partition(rows, kth, axis=0)[kth]
                 self._bg_key = key
             # Every closed chunk of the group at once (they share the
             # background; the peaks of a frame depend on that frame alone).
@@ -601,8 +620,6 @@ class FrameAnalyser:
                     self._keep(k, k * self.chunk_frames, self._chunks[k].shape[0], self._bg)
                 del self._chunks[k]
             self._done = js[-1] + 1
-            for k in [k for k in self._medians if k < self._done - self.past - self.BG_EVERY]:
-                del self._medians[k]
         return out
 
     def _keep(self, j: int, first: int, n_rows: int, bg: np.ndarray):

@@ -395,9 +395,27 @@ def test_slow_distant_pass_heard_in_pieces():
     assert abs(ev[0].pass_time_s - car.pass_time_s) < 1.0
 
 
-@pytest.mark.parametrize("seed,gap_s,ratio", [(9, 3.5, 0.99), (9, 3.5, 0.97), (10, 0.5, 0.97), (11, 2.0, 0.99)])
+def test_close_fast_loud_tone_heard_as_two_flat_pieces(monkeypatch):
+    # 170 km/h at 2.5 m (d / v 0.05 s) and a loud tone (SNR 25 dB): the plateaus before
+    # and after are flat for seconds and the fall between them takes a few hundredths of
+    # a second; here the tracker leaves two flat tracks, neither a pass on its own (on
+    # most seeds it follows the fall). Joined as pieces of one source they give the
+    # speed within the OIML R 91 tolerance (from memory); without the quick join the
+    # vehicle is missed.
+    kmh = 170.0
+    scene = Scene((Vehicle(kmh / 3.6, 2.5, 10.0, (Tone(320.0),), source_height_m=0.4),), 20.0, 16000,
+                  snr_db=25.0, ground_reflection=0.8, noise="white", seed=26)
+    ev = accepted(run(scene))
+    assert len(ev) == 1
+    assert abs(ev[0].speed_mps * 3.6 - kmh) <= oiml_tolerance_kmh(kmh)
+    monkeypatch.setattr(pipeline, "CHAIN_QUICK_RATIO", pipeline.CHAIN_RATIO[0])
+    assert accepted(run(scene)) == []
+
+
+@pytest.mark.parametrize("seed,gap_s,ratio", [(9, 3.5, 0.99), (9, 3.5, 0.97), (10, 0.5, 0.97), (11, 2.0, 0.99),
+                                              (12, 0.0, 0.77), (13, 0.1, 0.85), (14, 0.25, 0.6)])
 def test_two_steady_machines_one_after_the_other_are_no_pass(seed, gap_s, ratio):
-    # A steady 600 Hz machine stops and another, 1-3 % lower, starts after a gap: each
+    # A steady 600 Hz machine stops and another, 1-40 % lower, starts after a gap: each
     # is flat and their pitch steps down, which the two-plateau formula would read as a
     # slow pass. No pass is resolved across the gap, so there is no event (no event on
     # audio without a vehicle, as the requirements state).

@@ -36,7 +36,7 @@ from passby.matched import heard_s, matched_course, start_steady_z
 from passby.physics import doppler_factor, speed_of_sound
 from passby.settings import AnalysisSettings
 from passby.spectral import FrontEnd
-from passby.tracking import (SourceGrouper, Track, Tracker, fall_ratio, linked_groups,
+from passby.tracking import (MIN_PASS_RATIO, SourceGrouper, Track, Tracker, fall_ratio, linked_groups,
                              log_ratio_stability, pass_ratio)
 
 log = logging.getLogger(__name__)
@@ -180,13 +180,12 @@ CHAIN_PAIR_REL = 0.003
 #: for seconds either side and its fall takes a few hundredths of a second,
 #: too quick for the tracker, so the approach and the recession end up as
 #: two flat tracks, one beginning within CHAIN_QUICK_GAP_S of the other's
-#: end, at any ratio of pitch down to CHAIN_QUICK_RATIO, the fall of a
-#: source at half the speed of sound ((c - v) / (c + v), the moving-source
-#: relation's plateaus). They are judged as one source like a slow pass's
+#: end, at any ratio of pitch down to the largest fall of a pass
+#: (:data:`~passby.tracking.MIN_PASS_RATIO`). They are judged as one source like a slow pass's
 #: pieces (the curve must resolve the pass, heard across it). (On the
 #: benchmark's seed 1 two stable tones at 153 and 166 km/h passing 2-3 m
 #: away were missed without it: main cases 2469 and 1398.)
-CHAIN_QUICK_RATIO, CHAIN_QUICK_GAP_S = 1.0 / 3.0, 0.3
+CHAIN_QUICK_GAP_S = 0.3
 
 
 class Pipeline:
@@ -592,8 +591,8 @@ class Pipeline:
         the curve fit resolves the pass, heard across it with no gap longer
         than its transit time d / v (not from the plateaus alone: two steady
         machines one after the other make a step in pitch). A close, fast
-        pass whose fall was too quick to track is two such pieces too, one
-        right after the other at a larger ratio (CHAIN_QUICK_RATIO). What
+        pass whose fall was too quick to track is two such pieces too,
+        within CHAIN_QUICK_GAP_S of each other, at a larger ratio. What
         does not fall yet, or does not fit, is kept for the next piece.
         """
         hop = self.timebase.hop_s
@@ -653,7 +652,7 @@ class Pipeline:
                 continue
             ratio = _edge_ratio(a, b, edge)
             slow = CHAIN_RATIO[0] <= ratio <= CHAIN_RATIO[1]
-            quick = CHAIN_QUICK_RATIO <= ratio < CHAIN_RATIO[0] and gap <= CHAIN_QUICK_GAP_S / hop
+            quick = MIN_PASS_RATIO <= ratio < CHAIN_RATIO[0] and gap <= CHAIN_QUICK_GAP_S / hop
             if (slow or quick) and (best_gap is None or gap < best_gap):
                 best, best_gap = (k, first), gap
         return best

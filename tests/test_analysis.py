@@ -408,7 +408,7 @@ def test_close_fast_loud_tone_heard_as_two_flat_pieces(monkeypatch):
     ev = accepted(run(scene))
     assert len(ev) == 1
     assert abs(ev[0].speed_mps * 3.6 - kmh) <= oiml_tolerance_kmh(kmh)
-    monkeypatch.setattr(pipeline, "CHAIN_QUICK_RATIO", pipeline.CHAIN_RATIO[0])
+    monkeypatch.setattr(pipeline, "MIN_PASS_RATIO", pipeline.CHAIN_RATIO[0])
     assert accepted(run(scene)) == []
 
 

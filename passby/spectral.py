@@ -86,6 +86,27 @@ def kaiser_order(attenuation_db: float, width: float):
     return numtaps, round(beta, 6)
 
 
+def strided_frames(x: np.ndarray, length: int, hop: int, count: int | None = None) -> np.ndarray:
+    """Read-only view of frames of ``length`` samples, ``hop`` apart, of a 1-D array.
+
+    The frames :func:`numpy.lib.stride_tricks.sliding_window_view` gives
+    with ``[::hop]``, made directly (a quarter of its overhead, which
+    counts at tens of calls per second of audio). ``count`` limits the
+    number of frames.
+
+    Examples
+    --------
+    >>> strided_frames(np.arange(7), 3, 2).tolist()
+    [[0, 1, 2], [2, 3, 4], [4, 5, 6]]
+    """
+    x = np.asarray(x)
+    n = max(0, (x.size - length) // hop + 1)
+    if count is not None:
+        n = min(n, int(count))
+    return np.lib.stride_tricks.as_strided(x, shape=(n, length), strides=(hop * x.strides[0], x.strides[0]),
+                                           writeable=False)
+
+
 def kaiser_lowpass(numtaps: int, cutoff: float, beta: float) -> np.ndarray:
     """Linear-phase low-pass FIR by the window method, unit gain at DC.
 
@@ -120,6 +141,16 @@ class Decimator:
         Decimation factor (1: the input passes through unchanged).
     passband_hz : float
         Highest frequency that must pass (within 0.01 dB).
+    k_multiple : int
+        See Notes.
+    min_fft : int
+        Smallest transform: ``n_fft`` is the least ``q 2^j`` of at least
+        ``16 m`` and ``min_fft``. A shorter transform costs fewer operations
+        per sample, and several blocks of one push are transformed in one
+        call (pocketfft then works on several rows at once); a longer one
+        has fewer calls where a push brings few samples (measured by
+        tools/bench.py's cost runs: 4096 for the first decimation, 16384
+        for the second, which gets a sixth of the samples).
 
     Notes
     -----
@@ -135,7 +166,8 @@ class Decimator:
     :func:`kaiser_order` and :func:`kaiser_lowpass`.
     """
 
-    def __init__(self, sample_rate: int, q: int, passband_hz: float, k_multiple: int = 1):
+    def __init__(self, sample_rate: int, q: int, passband_hz: float, k_multiple: int = 1,
+                 min_fft: int = 4096):
         self.fs = int(sample_rate)
         self.q = int(q)
         self._pending = []
@@ -154,14 +186,15 @@ class Decimator:
         cutoff = min(passband_hz + width / 2.0, stop)
         h = kaiser_lowpass(m, cutoff / (0.5 * self.fs), beta)
         n_fft = self.q
-        while n_fft < 16 * m or n_fft < 16384:
+        while n_fft < 16 * m or n_fft < min_fft:
             n_fft *= 2
         self.m = m
         self.n_fft = n_fft
         self.n_new = n_fft - (m - 1)
         # In single precision: its rounding (about -140 dB) lies far below the
         # filter's stop band (-80 dB) and any recording's noise; half the work of double.
-        self._H = scipy.fft.rfft(h, n_fft)[: n_fft // (2 * self.q) + 1].astype(np.complex64)
+        # (the 1/q of the shorter inverse transform folded in)
+        self._H = (scipy.fft.rfft(h, n_fft)[: n_fft // (2 * self.q) + 1] / self.q).astype(np.complex64)
         self._history = np.zeros(m - 1, dtype=np.float32)
         self.delay_s = (m - 1) / 2.0 / self.fs
         self.delay_out = k
@@ -200,9 +233,9 @@ class Decimator:
         ext = np.concatenate([self._history, new])
         self._history = ext[-m1:].copy()
         # Overlapping input blocks of n_fft samples, n_new apart.
-        idx = np.lib.stride_tricks.sliding_window_view(ext, n_fft)[::n_new][:n_blocks]
+        idx = strided_frames(ext, n_fft, n_new, n_blocks)
         spec = scipy.fft.rfft(idx, axis=1)[:, : n_fft // (2 * q) + 1] * self._H
-        y = scipy.fft.irfft(spec, n_fft // q, axis=1) * np.float32(1.0 / q)
+        y = scipy.fft.irfft(spec, n_fft // q, axis=1)
         return y[:, m1 // q:].reshape(-1)
 
 
@@ -283,24 +316,45 @@ def gaussian_window(geometry: FrameGeometry) -> np.ndarray:
     return np.exp(-0.5 * (k / s) ** 2).astype(np.float32)
 
 
-def power_spectra_db(frames: np.ndarray, window: np.ndarray, geometry: FrameGeometry) -> np.ndarray:
+#: 10 log10(2): decibels of power per doubling.
+_DB_PER_OCTAVE = 10.0 * math.log10(2.0)
+
+
+def power_spectra_db(frames: np.ndarray, window: np.ndarray, geometry: FrameGeometry,
+                     work: np.ndarray | None = None) -> np.ndarray:
     """Power spectra in dB of windowed frames, for bins ``k_lo-1 .. k_hi+1``.
 
     Parameters
     ----------
     frames : ndarray, shape (n_frames, n_window)
+    work : ndarray, shape (m, n_fft), optional
+        Scratch space for the zero-padded frames, of the frames' and the
+        window's dtype, zero beyond the first ``n_window`` columns and with
+        ``m >= n_frames`` rows: reused from call to call, it saves a fresh
+        allocation (and its page faults, which cost as much as the
+        transform) per call.
 
     Returns
     -------
     ndarray, shape (n_frames, k_hi - k_lo + 3), float32
     """
     # The windowed frames written straight into the zero-padded transform input.
-    padded = np.zeros((frames.shape[0], geometry.n_fft), dtype=np.result_type(frames, window))
+    n = frames.shape[0]
+    dtype = np.result_type(frames, window)
+    if work is not None and work.shape[0] >= n and work.shape[1] == geometry.n_fft and work.dtype == dtype:
+        padded = work[:n]
+    else:
+        padded = np.zeros((n, geometry.n_fft), dtype=dtype)
     np.multiply(frames, window, out=padded[:, : frames.shape[1]])
     spec = scipy.fft.rfft(padded, axis=1)
     spec = spec[:, geometry.k_lo - 1: geometry.k_hi + 2]
     power = spec.real ** 2 + spec.imag ** 2
-    return (10.0 * np.log10(power + np.float32(1e-30))).astype(np.float32, copy=False)
+    # 10 log10(p) as (10 log10 2) log2(p), in place: numpy's single-precision
+    # log2 is vectorised and twice as fast as its log10.
+    power += np.float32(1e-30)
+    np.log2(power, out=power)
+    power *= np.float32(_DB_PER_OCTAVE)
+    return power.astype(np.float32, copy=False)
 
 
 def interpolate_peaks(p_db: np.ndarray, rows: np.ndarray, cols: np.ndarray):
@@ -370,7 +424,7 @@ class Peaks:
 
 def frame_levels(p_db: np.ndarray, background_db: np.ndarray) -> np.ndarray:
     """Each frame's broadband level above the background: the median of every third bin, dB."""
-    sub = (p_db - background_db)[:, ::3]
+    sub = p_db[:, ::3] - np.asarray(background_db)[..., ::3]
     half = sub.shape[1] // 2
     return np.partition(sub, half, axis=1)[:, half]
 
@@ -402,7 +456,8 @@ def pick_peaks(p_db: np.ndarray, background_db: np.ndarray, first_frame: int,
     z -= (frame_levels(p_db, background_db) if levels is None else levels)[:, None]
     inner = z[:, 1:-1]
     is_peak = (inner > z[:, :-2]) & (inner >= z[:, 2:]) & (inner >= threshold_db)
-    rows, cols = np.nonzero(is_peak)
+    # (flat indices and one divmod: several times faster than a 2-D nonzero)
+    rows, cols = np.divmod(np.flatnonzero(is_peak), is_peak.shape[1])
     n = p_db.shape[0]
     if rows.size == 0:
         return Peaks(np.empty(0, int), np.empty(0), np.empty(0), first_frame, n, np.empty(0))
@@ -507,6 +562,7 @@ class FrameAnalyser:
         self.past, self.future, self.min_chunks = int(past_chunks), int(future_chunks), int(min_chunks)
         self.percentile = float(percentile)
         self._buf = np.empty(0, dtype=np.float32)   # decimated samples not yet framed
+        self._work = None                            # scratch of power_spectra_db
         self._buf_start = 0                          # decimated index of _buf[0]
         self._next_frame = 0                         # next frame index to compute
         self._chunks = {}                            # chunk index -> p_db (frames x bins)
@@ -533,8 +589,10 @@ class FrameAnalyser:
             start = g.start + self._next_frame * g.hop - self._buf_start
             stop = start + (n_frames - 1) * g.hop + g.n_window
             seg = self._buf[start:stop]
-            frames = np.lib.stride_tricks.sliding_window_view(seg, g.n_window)[:: g.hop]
-            self._add_rows(power_spectra_db(frames, self.window, g))
+            frames = strided_frames(seg, g.n_window, g.hop)
+            if self._work is None or self._work.shape[0] < n_frames:
+                self._work = np.zeros((max(n_frames, 128), g.n_fft), dtype=np.float32)
+            self._add_rows(power_spectra_db(frames, self.window, g, self._work))
             self._next_frame += n_frames
             keep_from = g.start + self._next_frame * g.hop - self._buf_start
             self._buf = self._buf[keep_from:].copy()
@@ -558,7 +616,8 @@ class FrameAnalyser:
             i += take
             have += take
             if have == c:
-                self._close_chunk(np.concatenate(self._partial))
+                part = self._partial
+                self._close_chunk(part[0] if len(part) == 1 else np.concatenate(part))
                 self._partial, have = [], 0
 
     def _close_chunk(self, p_db: np.ndarray):
@@ -654,14 +713,17 @@ class FrameAnalyser:
         if self._ring_bg is None:
             return out
         g = self.g
-        floor = scipy.ndimage.median_filter(self._ring_bg, size=(1, 2 * floor_bins + 1), mode="nearest")
         frames = np.asarray(frames, dtype=np.int64)
         kept = (frames >= self.kept_from) & (frames <= self._ring_last)
-        slot = self._ring_slot[frames % self.keep_frames][:, None]
+        # The floor of the backgrounds these frames use, and only of those.
+        used, slot = np.unique(self._ring_slot[frames % self.keep_frames], return_inverse=True)
+        bg = self._ring_bg[used]
+        floor = scipy.ndimage.median_filter(bg, size=(1, 2 * floor_bins + 1), mode="nearest")
+        slot = slot.reshape(-1)[:, None]
         col = np.rint(freq_hz / g.bin_hz).astype(np.int64) - (g.k_lo - 1)
-        inside = kept[:, None] & (col >= 0) & (col < self._ring_bg.shape[1])
-        col = np.clip(col, 0, self._ring_bg.shape[1] - 1)
-        ex = self._ring_bg[slot, col] - floor[slot, col]
+        inside = kept[:, None] & (col >= 0) & (col < bg.shape[1])
+        col = np.clip(col, 0, bg.shape[1] - 1)
+        ex = bg[slot, col] - floor[slot, col]
         out[inside] = ex[inside]
         return out
 
@@ -733,7 +795,7 @@ class FrontEnd:
         dec_high = Decimator(sample_rate, q, f_max_hz, k_multiple=r)
         specs = []
         if self.split_hz > f_min_hz:
-            dec_low = Decimator(int(round(fs_high)), r, self.split_hz) if r > 1 else None
+            dec_low = Decimator(int(round(fs_high)), r, self.split_hz, min_fft=16384) if r > 1 else None
             g = make_geometry(fs_low, f_min_hz, self.split_hz, self.SIGMA_LOW_S, hop // r)
             delay = dec_high.delay_out // r + (dec_low.delay_out if dec_low else 0)
             specs.append(("low", dec_low, g, delay))

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from passby.physics import doppler_factor, plateau_solution
+from passby.physics import doppler_factor, doppler_factor_gradient, plateau_solution
 
 #: Upper bound of the fitted speed, as a fraction of the speed of sound.
 SPEED_BOUND_C = 0.6
@@ -134,6 +134,23 @@ def windowed_factor(t, v, d, t0, c, sigma_p, wind_mps=0.0):
     return np.tensordot(_GH_WEIGHTS, doppler_factor(shifted, v, d, t0, c, wind_mps), axes=1)
 
 
+def windowed_factor_gradient(t, v, d, t0, c, sigma_p, wind_mps=0.0):
+    """:func:`windowed_factor` and its derivatives in ``v``, ``d``, ``t0``.
+
+    The same Gauss-Hermite average of
+    :func:`~passby.physics.doppler_factor_gradient`.
+
+    Returns
+    -------
+    ndarray, shape (4,) + t.shape
+        The factor, then its partial derivatives.
+    """
+    t = np.asarray(t, dtype=float)
+    shifted = t[None, ...] + _GH_NODES.reshape((-1,) + (1,) * t.ndim) * np.asarray(sigma_p)
+    parts = np.stack(doppler_factor_gradient(shifted, v, d, t0, c, wind_mps))
+    return np.tensordot(_GH_WEIGHTS, parts, axes=([0], [1]))
+
+
 def integrated_autocorrelation(x: np.ndarray, max_lag: int = 30) -> float:
     """Variance inflation ``1 + 2 sum rho_k`` of a correlated sequence.
 
@@ -235,7 +252,7 @@ def _soft_l1_weights(r, f_scale):
     return 1.0 / np.sqrt(1.0 + z), float(np.sum(2.0 * (np.sqrt(1.0 + z) - 1.0))) * f_scale ** 2 / 2.0
 
 
-def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=()):
+def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=(), jac=None):
     """Bounded Levenberg-Marquardt with a soft-L1 loss by reweighting.
 
     Minimises ``sum f^2 rho((r_i / f)^2) / 2`` with ``rho(z) = 2(sqrt(1+z)-1)``
@@ -244,6 +261,9 @@ def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=()):
     leaving the bounds is projected onto them. The normal equations are
     only p x p (p = 3 + tones), so no factorisation of the tall Jacobian is
     needed: that keeps a fit to a few milliseconds on a small board.
+
+    ``jac(x, *args)``, when given, returns the Jacobian of ``fun``
+    (forward differences otherwise).
 
     Returns
     -------
@@ -267,7 +287,7 @@ def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=()):
     J = None
     nit = 0
     for nit in range(1, max_iter + 1):
-        J = _jacobian(fun, x, r, lower, upper, args)
+        J = _jacobian(fun, x, r, lower, upper, args) if jac is None else jac(x, *args)
         Jw = J * np.sqrt(w)[:, None]
         A = Jw.T @ Jw
         g = Jw.T @ (r * np.sqrt(w))
@@ -293,7 +313,7 @@ def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=()):
         if not improved or done:
             break
     if J is None:
-        J = _jacobian(fun, x, r, lower, upper, args)
+        J = _jacobian(fun, x, r, lower, upper, args) if jac is None else jac(x, *args)
     return _Solution(x, cost, J * np.sqrt(w)[:, None], nit)
 
 
@@ -315,6 +335,17 @@ def _residuals(theta, data: TrackData, sw, c, wind_mps=0.0):
     f0 = theta[3:][data.tone]
     model = f0 * windowed_factor(data.t, v, d, t0, c, data.sigma_p, wind_mps)
     return (data.f - model) * sw
+
+
+def _residuals_jacobian(theta, data: TrackData, sw, c, wind_mps=0.0):
+    """Jacobian of :func:`_residuals` (analytic, :func:`windowed_factor_gradient`)."""
+    v, d, t0 = theta[0], theta[1], theta[2]
+    f0 = theta[3:][data.tone]
+    W = windowed_factor_gradient(data.t, v, d, t0, c, data.sigma_p, wind_mps)
+    J = np.zeros((data.t.size, theta.size))
+    J[:, :3] = (-(f0 * sw))[:, None] * W[1:].T
+    J[np.arange(data.t.size), 3 + data.tone] = -W[0] * sw
+    return J
 
 
 def _plateaus(data: TrackData, part: float = 0.15):
@@ -424,13 +455,13 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0, start=None) -> Fi
         x0 = np.clip(x0, lower + 1e-9, upper - 1e-9)
         try:
             trials.append(robust_least_squares(_residuals, x0, lower, upper, 2.0, 5,
-                                               args=(sub, sw_sub, c, wind_mps)))
+                                               args=(sub, sw_sub, c, wind_mps), jac=_residuals_jacobian))
         except (ValueError, np.linalg.LinAlgError, FloatingPointError):
             continue
     for r in sorted(trials, key=lambda r: r.cost)[:2]:
         try:
             r = robust_least_squares(_residuals, r.x, lower, upper, 2.0, 30,
-                                     args=(sub, sw_sub, c, wind_mps))
+                                     args=(sub, sw_sub, c, wind_mps), jac=_residuals_jacobian)
         except (ValueError, np.linalg.LinAlgError, FloatingPointError):
             continue
         if best is None or r.cost < best.cost:
@@ -441,7 +472,7 @@ def fit_pass(data: TrackData, c: float, wind_mps: float = 0.0, start=None) -> Fi
     res0 = _residuals(best.x, data, sw, c, wind_mps)
     scale = max(1.4826 * float(np.median(np.abs(res0))), 1e-3)
     r = robust_least_squares(_residuals, best.x, lower, upper, 2.0 * scale, 40,
-                             args=(data, sw, c, wind_mps))
+                             args=(data, sw, c, wind_mps), jac=_residuals_jacobian)
     theta = r.x
     res = _residuals(theta, data, sw, c, wind_mps)
     s = 1.4826 * float(np.median(np.abs(res)))

@@ -131,3 +131,18 @@ def test_sweep_rate_matches_numerical_derivative():
     slope = np.gradient(f, t)[100]
     # -f0 v^2 / (c d) holds to first order in v/c
     assert slope == pytest.approx(physics.sweep_rate_at_pass(f0, v, d, c), rel=0.05)
+
+
+@pytest.mark.parametrize("v, d, t0, wind", [(12.0, 3.0, 0.0, 0.0), (40.0, 8.0, 1.5, 0.0),
+                                             (55.0, 25.0, -2.0, 6.0), (25.0, 2.0, 0.3, -4.0)])
+def test_doppler_factor_gradient_matches_finite_differences(v, d, t0, wind):
+    # the analytic derivatives in v, d, t0 against scipy's finite-difference
+    # gradient (reference library) of the factor itself, at times around the pass
+    c = 343.2
+    t = t0 + d / c + np.array([-3.0, -0.4, -0.05, 0.0, 0.02, 0.3, 2.5])
+    F, dv, dd, dt0 = physics.doppler_factor_gradient(t, v, d, t0, c, wind)
+    assert np.allclose(F, physics.doppler_factor(t, v, d, t0, c, wind), rtol=0, atol=1e-15)
+    for i, ti in enumerate(t):
+        num = scipy.optimize.approx_fprime(
+            np.array([v, d, t0]), lambda x: float(physics.doppler_factor(ti, *x, c, wind)), 1e-7)
+        assert [dv[i], dd[i], dt0[i]] == pytest.approx(num.tolist(), rel=1e-4, abs=1e-7)

@@ -13,6 +13,7 @@ live station and the offline analysis find the same tracks.
 
 from __future__ import annotations
 
+import bisect
 import math
 from dataclasses import dataclass
 
@@ -95,12 +96,13 @@ class _Open:
         self.slope = 0.0
 
     def add(self, frame, freq, snr, level):
-        self.frame.append(frame)
-        self.freq.append(freq)
+        fr, fq = self.frame, self.freq
+        fr.append(frame)
+        fq.append(freq)
         self.snr.append(snr)
         self.level.append(level)
-        k = min(3, len(self.frame) - 1)
-        self.slope = (self.freq[-1] - self.freq[-1 - k]) / (self.frame[-1] - self.frame[-1 - k])
+        k = 3 if len(fr) > 3 else len(fr) - 1
+        self.slope = (freq - fq[-1 - k]) / (frame - fr[-1 - k])
 
     def freeze(self) -> Track:
         return Track(np.asarray(self.frame), np.asarray(self.freq), np.asarray(self.snr),
@@ -161,10 +163,11 @@ class Tracker:
         bounds = np.flatnonzero(np.diff(fr)) + 1 if fr.size else np.empty(0, int)
         starts = np.concatenate(([0], bounds)) if fr.size else np.empty(0, int)
         stops = np.concatenate((bounds, [fr.size])) if fr.size else np.empty(0, int)
+        frl, fl, sl, ll = fr.tolist(), f.tolist(), s.tolist(), lv.tolist()
         for a, b in zip(starts.tolist(), stops.tolist()):
-            frame = int(fr[a])
+            frame = int(frl[a])
             self._expire(frame, done)
-            self._assign(frame, f[a:b].tolist(), s[a:b].tolist(), lv[a:b].tolist())
+            self._assign(frame, fl[a:b], sl[a:b], ll[a:b])
             self.frame = frame
         self.frame = max(self.frame, peaks.first_frame + peaks.n_frames - 1)
         self._expire(self.frame + 1, done)
@@ -189,13 +192,17 @@ class Tracker:
 
     def _expire(self, frame: int, done: list):
         keep, ended = [], []
+        max_gap, max_frames = self.max_gap, self.max_frames
         for t in self.open:
-            if frame - t.frame[-1] > self.max_gap:
+            if frame - t.frame[-1] > max_gap:
                 ended.append(t)
-            elif len(t.frame) >= self.max_frames:
+            elif len(t.frame) >= max_frames:
                 self._close(t, done)
             else:
                 keep.append(t)
+        if not ended:
+            self.open = keep
+            return
         for t in ended:
             succ, crossing = self._successor(t, keep)
             if succ is None:
@@ -263,31 +270,44 @@ class Tracker:
         return best, crossing
 
     def _assign(self, frame: int, freqs: list, snrs: list, levels: list):
+        # (the hottest loop of the analysis: plain floats and lists, no numpy)
         pairs = []
         rel_tol, bin_hz_at = self.rel_tol, self.bin_hz_at
-        for i, t in enumerate(self.open):
-            last = t.frame[-1]
-            gap = frame - last
-            pred = t.freq[-1] + t.slope * gap
-            tol = max(2.0 * bin_hz_at(pred), rel_tol * pred) * min(1.0 + 0.1 * (gap - 1), 2.0)
-            lo = max(pred - tol - 2.0 * max(0.0, -t.slope) * min(gap, 3), MIN_PASS_RATIO * t.freq[-1])
+        opened = self.open
+        for i, t in enumerate(opened):
+            f_last, slope = t.freq[-1], t.slope
+            gap = frame - t.frame[-1]
+            pred = f_last + slope * gap
+            tol = 2.0 * bin_hz_at(pred)
+            if rel_tol * pred > tol:
+                tol = rel_tol * pred
+            if gap > 1:
+                tol *= min(1.0 + 0.1 * (gap - 1), 2.0)
             hi = pred + tol
+            lo = pred - tol
+            if slope < 0.0:
+                lo += 2.0 * slope * (gap if gap < 3 else 3)
+            if lo < MIN_PASS_RATIO * f_last:
+                lo = MIN_PASS_RATIO * f_last
             for j, fj in enumerate(freqs):
                 if lo <= fj <= hi:
                     pairs.append((abs(fj - pred) / tol, i, j))
-        used_p = set()
-        if pairs:
-            used_t = set()
+        if not pairs:
+            for j, fj in enumerate(freqs):
+                opened.append(_Open(frame, fj, snrs[j], levels[j]))
+            return
+        used_t, used_p = set(), set()
+        if len(pairs) > 1:
             pairs.sort()
-            for _, i, j in pairs:
-                if i in used_t or j in used_p:
-                    continue
-                self.open[i].add(frame, freqs[j], snrs[j], levels[j])
-                used_t.add(i)
-                used_p.add(j)
+        for _, i, j in pairs:
+            if i in used_t or j in used_p:
+                continue
+            opened[i].add(frame, freqs[j], snrs[j], levels[j])
+            used_t.add(i)
+            used_p.add(j)
         for j, fj in enumerate(freqs):
             if j not in used_p:
-                self.open.append(_Open(frame, fj, snrs[j], levels[j]))
+                opened.append(_Open(frame, fj, snrs[j], levels[j]))
 
 
 def log_ratio_stability(a: Track, b: Track, min_overlap: int):
@@ -392,6 +412,19 @@ class SourceGrouper:
         # Only pairs of tracks still pooled are kept, so an id is never
         # that of a track gone and replaced.
         self._related = {}
+        # Whether an open track is related to a pooled one, by the open
+        # track, its first frame and how many of its frames reach no later
+        # than the pooled track's group ends (only those frames can be
+        # common to the two, so the answer stays while the open track grows).
+        self._open_related = {}
+
+    def _related_to_open(self, o, first: int, n: int, m: Track) -> bool:
+        key = (o, first, n, id(m))
+        r = self._open_related.get(key)
+        if r is None:
+            prefix = Track(np.asarray(o.frame[:n]), np.asarray(o.freq[:n]), np.asarray(o.snr[:n]))
+            r = self._open_related[key] = same_source(prefix, m, self.min_overlap)
+        return r
 
     def push(self, ended: list, open_tracks: list, frame: int, final: bool = False) -> list:
         """Add ended tracks; returns the groups (lists of Track) now complete."""
@@ -417,9 +450,13 @@ class SourceGrouper:
             if not ready and frame - end >= self.settle:
                 # The group's tracks have ended, so what they share with an
                 # open track is already known: wait only for a related one.
-                ready = not any(o.frame[0] <= end and o.frame[-1] >= start
-                                and any(same_source(o.freeze(), m, self.min_overlap) for m in members)
-                                for o in open_tracks)
+                ready = True
+                for o in open_tracks:
+                    if o.frame[0] <= end and o.frame[-1] >= start:
+                        n = bisect.bisect_right(o.frame, end)
+                        if any(self._related_to_open(o, o.frame[0], n, m) for m in members):
+                            ready = False
+                            break
             if ready:
                 out.append(sorted(members, key=lambda t: -t.strength))
             else:
@@ -427,6 +464,10 @@ class SourceGrouper:
         self.pool = keep
         alive = {id(t) for t in keep}
         self._related = {k: r for k, r in known.items() if k[0] in alive and k[1] in alive}
+        if self._open_related:
+            still = {id(o) for o in open_tracks}
+            self._open_related = {k: r for k, r in self._open_related.items()
+                                  if id(k[0]) in still and k[3] in alive}
         out.sort(key=lambda m: min(t.start for t in m))
         return out
 

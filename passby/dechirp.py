@@ -30,7 +30,7 @@ import numpy as np
 import scipy.fft
 import scipy.signal
 
-from passby.spectral import interpolate_peaks
+from passby.spectral import interpolate_peaks, strided_frames
 from passby.tracking import Track
 
 #: Frames transformed together, and sub-blocks demodulated together (bound the temporaries).
@@ -273,18 +273,22 @@ def best_path(score: np.ndarray, max_step: int) -> np.ndarray:
     n, m = score.shape
     acc = score[0].astype(float)
     back = np.zeros((n, m), dtype=np.int32)
-    cols = np.arange(m)
+    cols = np.arange(m, dtype=np.int32)
+    k = max(0, min(max_step, m - 1))
+    # acc between k cells of -inf either side: column c - s of acc is pad[k - s + c]
+    pad = np.full(m + 2 * k, -np.inf)
     for row in range(1, n):
+        pad[k: k + m] = acc
         best = acc.copy()
         arg = back[row]
         arg[:] = cols
-        for s in range(1, min(max_step, m - 1) + 1):
-            # from column c - s (columns s..m-1), then from column c + s (0..m-s-1);
-            # views of best and arg: a later step compares with what an earlier one chose
-            for cand, to, src in ((acc[:-s], slice(s, None), cols[:-s]), (acc[s:], slice(None, -s), cols[s:])):
-                better = cand > best[to]
-                best[to][better] = cand[better]
-                arg[to][better] = src[better]
+        for s in range(1, k + 1):
+            # from column c - s, then from column c + s; a later candidate
+            # must beat what an earlier one chose (ties stay with the nearer)
+            for cand, shift in ((pad[k - s: k - s + m], -s), (pad[k + s: k + s + m], s)):
+                better = cand > best
+                np.copyto(best, cand, where=better)
+                np.copyto(arg, cols + shift, where=better)
         acc = best + score[row]
     path = np.empty(n, dtype=np.int64)
     path[-1] = int(np.argmax(acc))
@@ -354,15 +358,14 @@ def follow_in_spectrogram(track: Track, spec: CourseSpectrogram, level_offset_db
     taken_rows = []
 
     def walk(r0, stop, dirn):
-        got = []
-        r = r0
-        while r != stop:
-            got.append(r)
-            if len(got) >= window and along[np.array(got[-window:])].mean() < min_power:
-                got = got[:-window]
-                break
-            r += dirn
-        return got
+        # The rows from r0 towards stop, up to the first window of them whose
+        # mean lies below min_power, that window given back.
+        got = np.arange(r0, stop, dirn)
+        if got.size < window:
+            return got.tolist()
+        means = strided_frames(along[got], window, 1).mean(axis=1)
+        low = np.flatnonzero(means < min_power)
+        return (got if low.size == 0 else got[: low[0]]).tolist()
 
     if 0 <= r_end + 1 < rows.size:
         taken_rows += walk(r_end + 1, rows.size, 1)

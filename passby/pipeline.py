@@ -354,28 +354,30 @@ class Pipeline:
         hop = self.timebase.hop_s
         win, reach = int(round(SWEEP_WINDOW_S / hop)), int(round(SWEEP_REACH_S / hop))
         ready_to = math.inf if final else self.tracker.frame - int(round(SWEEP_SETTLE_S / hop))
-        pts = Track.joined(self._pieces)
-        pts = pts.take(np.flatnonzero(pts.frame > self._swept_to))
-        fr = pts.frame
-        n_in = np.searchsorted(fr, fr + win, side="right") - np.arange(fr.size)
         out, used_to = [], self._swept_to
-        for i in np.flatnonzero(n_in >= SWEEP_MIN_POINTS).tolist():
-            if fr[i] <= used_to:
-                continue
-            centre = int(np.median(fr[i: i + n_in[i]]))
-            if centre + reach > ready_to:
-                break   # wait for the rest of the pass
-            used_to = centre + reach
-            pool = self._track_points(centre - reach - int(round(SWEEP_TRACK_S / hop)))
-            if self._tracked_fall_near(pool, centre, reach):
-                continue    # pieces around a pass the tracker follows
-            sel = np.flatnonzero(np.abs(fr - centre) <= reach)
-            sel = sel[self._untracked(pool, pts.take(sel))]
-            if sel.size < SWEEP_MIN_POINTS:
-                continue    # mostly fragments of tones the tracker follows
-            found = self._sweep_source(pts.take(sel), centre)
-            if found is not None:
-                out.append(found)
+        # (most chunks hold too few points to gather anywhere: nothing to join)
+        if sum(p.frame.size for p in self._pieces) >= SWEEP_MIN_POINTS:
+            pts = Track.joined(self._pieces)
+            pts = pts.take(np.flatnonzero(pts.frame > self._swept_to))
+            fr = pts.frame
+            n_in = np.searchsorted(fr, fr + win, side="right") - np.arange(fr.size)
+            for i in np.flatnonzero(n_in >= SWEEP_MIN_POINTS).tolist():
+                if fr[i] <= used_to:
+                    continue
+                centre = int(np.median(fr[i: i + n_in[i]]))
+                if centre + reach > ready_to:
+                    break   # wait for the rest of the pass
+                used_to = centre + reach
+                pool = self._track_points(centre - reach - int(round(SWEEP_TRACK_S / hop)))
+                if self._tracked_fall_near(pool, centre, reach):
+                    continue    # pieces around a pass the tracker follows
+                sel = np.flatnonzero(np.abs(fr - centre) <= reach)
+                sel = sel[self._untracked(pool, pts.take(sel))]
+                if sel.size < SWEEP_MIN_POINTS:
+                    continue    # mostly fragments of tones the tracker follows
+                found = self._sweep_source(pts.take(sel), centre)
+                if found is not None:
+                    out.append(found)
         # Keep only the pieces that may still gather with later ones.
         self._swept_to = used_to
         keep_from = used_to if final else max(used_to, ready_to - reach - win)

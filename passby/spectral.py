@@ -545,11 +545,13 @@ class FrameAnalyser:
     block sizes.
     """
 
-    #: Chunks that share one background computation (4 s; the background
-    #: is a low percentile over about a minute and changes slowly). Every 2 s
-    #: instead gave the same grades on the benchmark's stable, hard and
-    #: noise-only subsets (seed 1) at 0.19 s more on the 10-min cost file.
-    BG_EVERY = 8
+    #: Chunks that share one background computation (2 s). Every 4 s saved
+    #: 0.19 s on the 10-min cost file of tools/bench.py and left the grades of
+    #: its short recordings alone, but in the station benchmark's hour it moved
+    #: speeds by up to 1.4 km/h and a fan stopping gave an event of no vehicle:
+    #: the look-ahead then reaches 7.5 s, time enough for a slow vehicle's
+    #: plateau to lift the low percentile.
+    BG_EVERY = 4
 
     def __init__(self, geometry: FrameGeometry, threshold_db: float, chunk_frames: int = 50,
                  past_chunks: int = 120, future_chunks: int = 8, min_chunks: int = 60,

@@ -129,9 +129,13 @@ def windowed_factor(t, v, d, t0, c, sigma_p, wind_mps=0.0):
     >>> bool(abs(a[0] - b[0]) < 1e-9), round(float(b[0]), 5)   # 1 / (1 - 20 / 343.2)
     (True, 1.06188)
     """
+    return np.tensordot(_GH_WEIGHTS, doppler_factor(_gh_times(t, sigma_p), v, d, t0, c, wind_mps), axes=1)
+
+
+def _gh_times(t, sigma_p):
+    """The Gauss-Hermite nodes about each time ``t`` (s.d. ``sigma_p``): shape (3,) + t.shape."""
     t = np.asarray(t, dtype=float)
-    shifted = t[None, ...] + _GH_NODES.reshape((-1,) + (1,) * t.ndim) * np.asarray(sigma_p)
-    return np.tensordot(_GH_WEIGHTS, doppler_factor(shifted, v, d, t0, c, wind_mps), axes=1)
+    return t[None, ...] + _GH_NODES.reshape((-1,) + (1,) * t.ndim) * np.asarray(sigma_p)
 
 
 def windowed_factor_gradient(t, v, d, t0, c, sigma_p, wind_mps=0.0):
@@ -145,9 +149,7 @@ def windowed_factor_gradient(t, v, d, t0, c, sigma_p, wind_mps=0.0):
     ndarray, shape (4,) + t.shape
         The factor, then its partial derivatives.
     """
-    t = np.asarray(t, dtype=float)
-    shifted = t[None, ...] + _GH_NODES.reshape((-1,) + (1,) * t.ndim) * np.asarray(sigma_p)
-    parts = np.stack(doppler_factor_gradient(shifted, v, d, t0, c, wind_mps))
+    parts = np.stack(doppler_factor_gradient(_gh_times(t, sigma_p), v, d, t0, c, wind_mps))
     return np.tensordot(_GH_WEIGHTS, parts, axes=([0], [1]))
 
 
@@ -284,10 +286,13 @@ def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=(), jac=
     r = fun(x, *args)
     w, cost = _soft_l1_weights(r, f_scale)
     lam = 1e-3
+    def jacobian_at(x, r):
+        return _jacobian(fun, x, r, lower, upper, args) if jac is None else jac(x, *args)
+
     J = None
     nit = 0
     for nit in range(1, max_iter + 1):
-        J = _jacobian(fun, x, r, lower, upper, args) if jac is None else jac(x, *args)
+        J = jacobian_at(x, r)
         Jw = J * np.sqrt(w)[:, None]
         A = Jw.T @ Jw
         g = Jw.T @ (r * np.sqrt(w))
@@ -313,7 +318,7 @@ def robust_least_squares(fun, x0, lower, upper, f_scale, max_iter, args=(), jac=
         if not improved or done:
             break
     if J is None:
-        J = _jacobian(fun, x, r, lower, upper, args) if jac is None else jac(x, *args)
+        J = jacobian_at(x, r)
     return _Solution(x, cost, J * np.sqrt(w)[:, None], nit)
 
 

@@ -165,7 +165,7 @@ class Tracker:
         stops = np.concatenate((bounds, [fr.size])) if fr.size else np.empty(0, int)
         frl, fl, sl, ll = fr.tolist(), f.tolist(), s.tolist(), lv.tolist()
         for a, b in zip(starts.tolist(), stops.tolist()):
-            frame = int(frl[a])
+            frame = frl[a]
             self._expire(frame, done)
             self._assign(frame, fl[a:b], sl[a:b], ll[a:b])
             self.frame = frame
@@ -418,8 +418,9 @@ class SourceGrouper:
         # common to the two, so the answer stays while the open track grows).
         self._open_related = {}
 
-    def _related_to_open(self, o, first: int, n: int, m: Track) -> bool:
-        key = (o, first, n, id(m))
+    def _related_to_open(self, o, end: int, m: Track) -> bool:
+        n = bisect.bisect_right(o.frame, end)
+        key = (o, o.frame[0], n, id(m))
         r = self._open_related.get(key)
         if r is None:
             prefix = Track(np.asarray(o.frame[:n]), np.asarray(o.freq[:n]), np.asarray(o.snr[:n]))
@@ -453,8 +454,7 @@ class SourceGrouper:
                 ready = True
                 for o in open_tracks:
                     if o.frame[0] <= end and o.frame[-1] >= start:
-                        n = bisect.bisect_right(o.frame, end)
-                        if any(self._related_to_open(o, o.frame[0], n, m) for m in members):
+                        if any(self._related_to_open(o, end, m) for m in members):
                             ready = False
                             break
             if ready:

@@ -67,6 +67,9 @@ GRID_CHUNK_ELEMENTS = 1 << 16
 N_STARTS = 4
 #: Rival maxima (see :class:`MatchedCourse`): log-likelihood ratio margin, relative speed apart.
 RIVAL_LLR, RIVAL_REL, RIVAL_SIDE_SHARE = 15.0, 0.03, 0.75
+#: A course this close (log) to the search box's speed or distance limits, or this share of
+#: the pass-time window from its edges, is at the box's bound (see :class:`MatchedCourse`).
+BOUND_REL = 0.02
 #: Steady lines at the plateaus (:func:`_steady_lines`): blocks this far (s) from the pass are used.
 STEADY_GUARD_S = 0.1
 #: Further tones tried (see :func:`_more_tones`).
@@ -109,6 +112,12 @@ class MatchedCourse:
         approach pitch after the pass, its recession pitch before; see
         :func:`_steady_lines`): a course drawn along a fan's or a
         transformer's line holds it on both sides.
+    at_bound : bool
+        Whether the course ended within BOUND_REL (log) of the search's
+        box in speed or distance, or within BOUND_REL of its width from
+        its edges in pass time: no maximum of the likelihood inside it
+        (a fan spinning down, searched from the fit of its brief fall,
+        ran to the largest distance allowed).
     """
 
     speed_mps: float
@@ -122,6 +131,7 @@ class MatchedCourse:
     excess_after: float
     rival_speed_mps: float = math.nan
     steady_z: float = math.nan
+    at_bound: bool = False
 
 
 def heard_s(course, c):
@@ -275,7 +285,7 @@ def _rotations(off, F):
     return np.exp(-2j * np.pi * off[None, :, None] * F[:, None, :])
 
 
-def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
+def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6, max_steady_z=math.inf):
     """The maximum-likelihood course of a close pass near a rough one.
 
     Parameters
@@ -295,6 +305,11 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
         Wind component along the travel, m/s.
     reach_s : float
         Samples used: within ``reach_s`` of the rough pass.
+    max_steady_z : float
+        A maximum whose refined course has steady-line evidence
+        (:func:`_steady_lines`) of this or more runs along a steady line,
+        not a vehicle's course: the next likeliest is refined and taken
+        instead (the likeliest of all when every one does).
 
     Returns
     -------
@@ -349,7 +364,6 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
         return np.array(to_theta(r.x)), -r.fun
 
     # The best few distinct starts, each with its tones' rest frequencies moved to their best offsets.
-    best = (-math.inf, None, None)
     finals = []
     starts = []
     for s, th in scores:
@@ -367,17 +381,34 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
         theta, _ = simplex(th, BLOCK_FINE_S[0], e)
         e.measure_noise(tuple(theta), BLOCK_FINE_S[-1])
         score = e.llr(tuple(theta), BLOCK_FINE_S[-1])
-        finals.append((score, tuple(float(x) for x in theta), len(my_rests), _sides(e, theta, c)[0]))
-        if score > best[0]:
-            best = (score, theta, e)
-    _, theta, ev = best
-    theta, _ = simplex(theta, BLOCK_FINE_S[-1], ev)
-    # The common scale leaves each tone's offset at the coarse grid's step:
-    # each is refined on its own, then the course once more.
-    ev.refine_tones(tuple(theta), BLOCK_FINE_S[-1])
-    theta, _ = simplex(theta, BLOCK_FINE_S[-1], ev)
-    ev.refine_tones(tuple(theta), BLOCK_FINE_S[-1])
-    tones = ev.tones_hz(theta[3])
+        finals.append((score, tuple(float(x) for x in theta), len(my_rests), _sides(e, theta, c)[0], e))
+
+    def refined(final):
+        _, theta, _, _, e = final
+        theta, _ = simplex(np.array(theta), BLOCK_FINE_S[-1], e)
+        # The common scale leaves each tone's offset at the coarse grid's step:
+        # each is refined on its own, then the course once more.
+        e.refine_tones(tuple(theta), BLOCK_FINE_S[-1])
+        theta, _ = simplex(theta, BLOCK_FINE_S[-1], e)
+        e.refine_tones(tuple(theta), BLOCK_FINE_S[-1])
+        tones = e.tones_hz(theta[3])
+        steady = _steady_lines(seg, fs, t_y0 + i0 / fs, theta, np.asarray(tones) / theta[3], c, wind_mps)
+        return theta, tones, steady
+
+    # The likeliest maximum, unless its course runs along a steady line (a fan heard
+    # near one plateau's pitch can lift a wrong course above the right one): then the next.
+    ranked = sorted(finals, key=lambda f: -f[0])
+    first, on_lines = None, []
+    for chosen in ranked:
+        theta, tones, steady = got = refined(chosen)
+        first = first or (chosen, got)
+        if not steady >= max_steady_z:
+            break
+        on_lines.append(chosen)
+    else:
+        chosen, (theta, tones, steady) = first
+        on_lines = []
+    best_score, _, _, best_sides, ev = chosen
     # The evidence either side of the pass in short blocks (a long block
     # straddling the pass would hold the sweep on one side only).
     stats, per_block = _sides(ev, theta, c)
@@ -385,18 +416,23 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6):
     ev.measure_noise(tuple(theta), block)
     cov = _inverse_curvature(lambda th: ev.llr(th, block), theta)
     v, d, t0 = (float(x) for x in theta[:3])
-    # A rival maximum: another start that ends nearly as likely at another speed.
-    best_score = max(f[0] for f in finals)
-    best_sides = min(next(f[3] for f in finals if f[0] == best_score))
-    rivals = [f[1][0] for f in finals if (f[0] >= best_score - RIVAL_LLR or (f[0] >= RIVAL_SIDE_SHARE * best_score and min(f[3]) > best_sides))
+    # A rival maximum: another start that ends nearly as likely at another speed (not
+    # the chosen one's own start: refined, its speed may have moved by more than
+    # RIVAL_REL; nor one found to run along a steady line).
+    best_sides = min(best_sides)
+    rivals = [f[1][0] for f in finals if f is not chosen and all(f is not o for o in on_lines) and (f[0] >= best_score - RIVAL_LLR or (f[0] >= RIVAL_SIDE_SHARE * best_score and min(f[3]) > best_sides))
               and abs(math.log(f[1][0] / v)) > RIVAL_REL]
-    log.debug("matched search: maxima (llr, km/h, m, tones, z before, z after) %s",
-              [(round(f[0], 1), round(3.6 * f[1][0], 1), round(f[1][1], 2), f[2], round(f[3][0], 1), round(f[3][1], 1)) for f in finals])
+    log.debug("matched search: maxima (llr, km/h, m, tones, z before, z after) %s, chosen %d",
+              [(round(f[0], 1), round(3.6 * f[1][0], 1), round(f[1][1], 2), f[2], round(f[3][0], 1), round(f[3][1], 1))
+               for f in finals], finals.index(chosen))
     rival = max(rivals, key=lambda r: abs(math.log(r / v))) if rivals else math.nan
-    steady = _steady_lines(seg, fs, t_y0 + i0 / fs, theta, np.asarray(tones) / theta[3], c, wind_mps)
+    u = np.array([math.log(v), math.log(d), t0])
+    width = hi[:3] - lo[:3]
+    margin = np.array([BOUND_REL, BOUND_REL, BOUND_REL * width[2]])
+    at_bound = bool(np.any((u - lo[:3] < margin) | (hi[:3] - u < margin)))
     return MatchedCourse(v, d, t0, _sd(cov, 0), _sd(cov, 1), tones,
                          tuple(float(x) for x in per_block.sum(axis=1) - per_block.shape[1]),
-                         stats[0], stats[1], rival, steady)
+                         stats[0], stats[1], rival, steady, at_bound)
 
 
 def _segment(y, fs, t_y0, start, c, reach_s):

@@ -789,14 +789,15 @@ class Pipeline:
             log.debug("vote for %.0f km/h, d %.1f m at %.2f s lies on steady lines (z %.1f): no matched search",
                       3.6 * start[0], start[1], start[2], steady)
             return None
-        m = matched_course(y, fs, t_y0, start, self.c, self.settings.wind_mps, reach_s=reach)
+        m = matched_course(y, fs, t_y0, start, self.c, self.settings.wind_mps, reach_s=reach,
+                           max_steady_z=MATCHED_MAX_STEADY_Z)
         if m is None:
             return None
         log.debug("matched search from %.0f km/h, d %.1f m at %.2f s: %.1f +- %.1f km/h, d %.2f m, evidence z "
-                  "%.1f before, %.1f after, rival %.1f km/h, steady line z %.1f", 3.6 * start[0], start[1], start[2], 3.6 * m.speed_mps,
-                  3.6 * m.speed_std_mps, m.closest_m, m.excess_before, m.excess_after, 3.6 * m.rival_speed_mps,
-                  m.steady_z)
-        if (math.isfinite(m.rival_speed_mps) or min(m.excess_before, m.excess_after) < MATCHED_MIN_Z
+                  "%.1f before, %.1f after, rival %.1f km/h, steady line z %.1f%s", 3.6 * start[0], start[1], start[2],
+                  3.6 * m.speed_mps, 3.6 * m.speed_std_mps, m.closest_m, m.excess_before, m.excess_after,
+                  3.6 * m.rival_speed_mps, m.steady_z, ", at the search's bound" if m.at_bound else "")
+        if (m.at_bound or math.isfinite(m.rival_speed_mps) or min(m.excess_before, m.excess_after) < MATCHED_MIN_Z
                 or not m.steady_z < MATCHED_MAX_STEADY_Z or m.closest_m < CANDIDATE_MIN_CLOSEST_M
                 or m.closest_m < MATCHED_MIN_TRANSIT_S * m.speed_mps
                 or not m.speed_std_mps <= MATCHED_MAX_STD_REL * m.speed_mps):

@@ -71,6 +71,19 @@ def test_course_of_a_pass_is_found_from_a_far_start():
     assert m.tones_hz[0] == pytest.approx(1150.0, rel=1e-3)
 
 
+def test_course_beyond_the_search_box_is_at_its_bound():
+    # A pass at 6 m searched from a start at 0.8 m: the box reaches 5 times the start's
+    # distance (4 m), and the course found stops at that edge, no maximum inside it. From a
+    # start near the truth the same pass is found inside the box.
+    fs, v, d, t0 = 8000, 150 / 3.6, 6.0, 1.5
+    x = _close_pass(fs, v, d, t0, [(480.0, 1.0), (960.0, 0.6)], sigma=0.5, seed=8)
+    far = matched_course(x, fs, 0.0, [v, 0.8, t0, 480.0, 960.0], C)
+    assert far.at_bound and far.closest_m == pytest.approx(4.0, rel=0.03)
+    near = matched_course(x, fs, 0.0, [v, d, t0, 480.0, 960.0], C)
+    assert not near.at_bound
+    assert abs(near.speed_mps - v) <= 0.01 * v      # OIML R 91: +-1 % above 100 km/h
+
+
 @pytest.mark.parametrize("seed", [4, 5, 6])
 def test_noise_alone_does_not_reach_the_evidence_threshold(seed):
     # Kay sec. 7.6: under noise alone each block's ratio has mean 1, so its z-score is

@@ -48,6 +48,8 @@ MAX_POINTS_PER_TONE = 500
 #: those errors lie within 2u, not 95 %). The grading thresholds below are
 #: in units of the scaled uncertainty, so the grades are those of before.
 UNCERTAINTY_SCALE = 1.4
+#: The reason (its start) of a fit rejected because its speed is too uncertain.
+UNCERTAIN_SPEED = "speed too uncertain"
 
 # Probabilists' Gauss-Hermite rule, 3 points: exact for polynomials of
 # degree 5 against a normal weight (Abramowitz & Stegun 25.4.46).
@@ -622,7 +624,7 @@ def _grade(v, v_std, d, d_std, t0, data, c, resid_hz, f0s, lower, upper):
     if t0 < t_first - margin or t0 > t_last + margin:
         return "rejected", "the pass itself is not in the recording (only approach or recession)"
     if v_std > 2.5 * UNCERTAINTY_SCALE:
-        return "rejected", f"speed too uncertain (+-{v_std * 3.6:.1f} km/h)"
+        return "rejected", f"{UNCERTAIN_SPEED} (+-{v_std * 3.6:.1f} km/h)"
     if d >= upper[1] * 0.99 or d <= lower[1] * 1.01:
         return "rejected", f"closest distance at its bound ({d:.1f} m): the pass is not resolved"
     if v_std > 0.5 * UNCERTAINTY_SCALE:

@@ -210,10 +210,14 @@ def test_quick_run_writes_the_tables(tmp_path):
     assert all(_number(r[1]) > 0 for r in rows)
 
 
-@pytest.mark.parametrize("index", [281, 337])
+@pytest.mark.parametrize("index", [281, 337, 77, 186, 414, 42])
 def test_close_fast_hard_cases_are_found_by_the_matched_search(bench, index):
-    # Two close, fast passes of the hard subset (seed 1) that only the matched search finds:
-    # the speed within the subset's target, +-3 km/h or 3 % (the OIML R 91 form, from memory)
+    # Close, fast passes of the hard subset (seed 1) that only the matched search finds:
+    # the speed within the subset's target, +-3 km/h or 3 % (the OIML R 91 form, from memory).
+    # In case 77 the likeliest maximum lies along the steady line near the approach pitch
+    # (142.6 km/h for 198.7); in case 414 the chosen start, refined, moved 3.3 % from its
+    # own start's speed and was once taken for its own rival; case 186's vote has 4 votes,
+    # 1 of them by chance; case 42 is a brief sweep's candidate, searched from its own fit.
     from passby import analyze
     p = bench.case_params("hard", index, 1)
     x = render(bench.build_scene(p))
@@ -237,3 +241,49 @@ def test_close_fast_pass_beside_a_steady_line_gives_no_wrong_speed(bench):
     v_kmh = 3.6 * p["speed_mps"]
     assert all(abs(3.6 * e.speed_mps - v_kmh) <= bench.oiml_tolerance_kmh(v_kmh, 3.0)
                for e in events if e.quality != "rejected")
+
+
+def test_hard_case_heard_only_at_its_pass_is_confirmed_by_following(bench):
+    # Hard case 197 (seed 1): 52.5 km/h at 3.5 m, tracked for 0.4 s around its pass only,
+    # so the first fit is rejected as too uncertain (+-16 km/h); following its course
+    # finds the plateaus of its 925 Hz tone. Within +-3 km/h (the OIML R 91 form, from
+    # memory), graded fair.
+    from passby import analyze
+    from passby.pipeline import UNHEARD_PLATEAUS
+    p = bench.case_params("hard", 197, 1)
+    x = render(bench.build_scene(p))
+    x *= 0.5 / np.max(np.abs(x))
+    events = analyze(x, sample_rate=p["fs"], temperature_c=p["temperature_c"]).events
+    found = [e for e in events if e.quality != "rejected"]
+    assert len(found) == 1 and found[0].quality == "fair" and found[0].reason == UNHEARD_PLATEAUS
+    v_kmh = 3.6 * p["speed_mps"]
+    assert abs(3.6 * found[0].speed_mps - v_kmh) <= bench.oiml_tolerance_kmh(v_kmh, 3.0)
+
+
+def test_hard_case_whose_track_broke_in_its_fall_is_joined_across_the_break(bench):
+    # Hard case 23 (seed 1): 172 km/h at 5 m. The tracker lost the 314 Hz tone in the
+    # steepest part of its fall (364 -> 340 Hz, then 320 -> 278 Hz a frame later); the
+    # later piece alone once fitted 96 km/h, graded good. Within +-3 % (the OIML R 91
+    # form, from memory).
+    from passby import analyze
+    p = bench.case_params("hard", 23, 1)
+    x = render(bench.build_scene(p))
+    x *= 0.5 / np.max(np.abs(x))
+    events = analyze(x, sample_rate=p["fs"], temperature_c=p["temperature_c"]).events
+    found = [e for e in events if e.quality != "rejected"]
+    v_kmh = 3.6 * p["speed_mps"]
+    assert len(found) == 1
+    assert abs(3.6 * found[0].speed_mps - v_kmh) <= bench.oiml_tolerance_kmh(v_kmh, 3.0)
+
+
+def test_fan_spinning_down_gives_no_matched_event(bench):
+    # Noise case 3 (seed 1, 60 s): steady lines and two fans, one switched off at 33.8 s.
+    # Its spin-down left a brief falling track; a matched search from that track's fit
+    # once ran to the largest distance it allows and gave a vehicle at 136 km/h. Noise
+    # alone must give no event (the analysis target).
+    from passby import analyze
+    p = bench.case_params("noise", 3, 1)
+    p["duration_s"] = 60.0
+    x = render(bench.build_scene(p))
+    x *= 0.5 / np.max(np.abs(x))
+    assert analyze(x, sample_rate=p["fs"], temperature_c=p["temperature_c"]).events == ()

@@ -802,10 +802,8 @@ class Pipeline:
         cand = self._candidates.pop(id(ev), None)
         if cand is not None and cand[0] is ev:
             confirmed = self._confirmed(self._follow_all(ev, candidate=True))
-            # (a brief sweep's candidate has no vote's course: its own fit is the start)
-            start = cand[1] if cand[1] is not None or not _has_course(ev) else _course_of(ev)
-            if confirmed is None and start is not None:
-                return self._matched(self.tracks_of.get(id(ev), ()), start)
+            if confirmed is None and cand[1] is not None:
+                return self._matched(self.tracks_of.get(id(ev), ()), cand[1])
             return confirmed
         if ev.quality == "rejected" and _has_course(ev) and (ev.reason or "").startswith(UNCERTAIN_SPEED):
             # Heard only near its pass: its plateaus may still be found by following.

@@ -43,7 +43,9 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft
+import scipy.ndimage
 import scipy.optimize
+import scipy.signal
 
 from passby.physics import doppler_factor
 
@@ -66,12 +68,23 @@ GRID_CHUNK_ELEMENTS = 1 << 16
 #: Distinct starts of the simplex taken from the grid.
 N_STARTS = 4
 #: Rival maxima (see :class:`MatchedCourse`): log-likelihood ratio margin, relative speed apart.
-RIVAL_LLR, RIVAL_REL, RIVAL_SIDE_SHARE = 15.0, 0.03, 0.75
+RIVAL_LLR, RIVAL_REL, RIVAL_SIDE_SHARE, RIVAL_SIDE_Z = 15.0, 0.03, 0.75, 2.0
 #: A course this close (log) to the search box's speed or distance limits, or this share of
 #: the pass-time window from its edges, is at the box's bound (see :class:`MatchedCourse`).
 BOUND_REL = 0.02
+#: The rise of the evidence at the pass (see :class:`MatchedCourse`): near within RISE_NEAR_S
+#: of the pass heard, far beyond RISE_FAR_S.
+RISE_NEAR_S, RISE_FAR_S = 0.1, 0.35
 #: Steady lines at the plateaus (:func:`_steady_lines`): blocks this far (s) from the pass are used.
 STEADY_GUARD_S = 0.1
+#: Steady lines taken off the samples before the search (:func:`without_steady_lines`): each
+#: side of the pass beyond the guard must hold LINE_SIDE_MIN_S of samples (at most LINE_SIDE_MAX_S
+#: are used); a line stands LINE_PEAK_RATIO above the median power within LINE_FLOOR_HZ on both
+#: sides, and its complex amplitude in each half of each side differs from their mean by at most
+#: LINE_MAX_CHANGE of the mean's magnitude;
+#: at most LINE_MAX lines, the strongest, below LINE_TOP_SHARE of the Nyquist rate.
+LINE_SIDE_MIN_S, LINE_SIDE_MAX_S, LINE_PEAK_RATIO, LINE_FLOOR_HZ = 1.0, 2.5, 10.0, 10.0
+LINE_MAX_CHANGE, LINE_MAX, LINE_TOP_SHARE = 0.5, 8, 0.9
 #: Further tones tried (see :func:`_more_tones`).
 MORE_DENOMINATOR, MORE_MAX_RATIO, MORE_APART, MORE_MIN_Z_SIDE, MORE_MIN_HZ = 4, 4.0, 0.02, 5.0, 50.0
 
@@ -102,7 +115,7 @@ class MatchedCourse:
         start, whose speed differs by more than RIVAL_REL (relative, log) and
         whose log-likelihood ratio is within RIVAL_LLR of the best, or at
         least RIVAL_SIDE_SHARE of it with evidence on its weaker side of the
-        pass stronger than the best's
+        pass stronger than the best's by RIVAL_SIDE_Z (z-score)
         (a stationary line heard near one plateau's pitch lifts a wrong
         course on that side only); NaN when there is none. The data do not
         tell the two courses apart.
@@ -112,6 +125,13 @@ class MatchedCourse:
         approach pitch after the pass, its recession pitch before; see
         :func:`_steady_lines`): a course drawn along a fan's or a
         transformer's line holds it on both sides.
+    rise_db, expected_rise_db : float
+        How much stronger the tones' evidence (its excess over noise, all
+        tones) is within RISE_NEAR_S of the pass heard than from
+        RISE_FAR_S to the end of the samples searched, dB; and the rise
+        spherical spreading (amplitude ``d / r``) gives along the course.
+        A chord of steady tones (a slow train's horn) that a fast course
+        joins across the pass is heard about as loud near it as away.
     at_bound : bool
         Whether the course ended within BOUND_REL (log) of the search's
         box in speed or distance, or within BOUND_REL of its width from
@@ -132,6 +152,8 @@ class MatchedCourse:
     rival_speed_mps: float = math.nan
     steady_z: float = math.nan
     at_bound: bool = False
+    rise_db: float = math.nan
+    expected_rise_db: float = math.nan
 
 
 def heard_s(course, c):
@@ -411,7 +433,7 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6, max_steady_
     best_score, _, _, best_sides, ev = chosen
     # The evidence either side of the pass in short blocks (a long block
     # straddling the pass would hold the sweep on one side only).
-    stats, per_block = _sides(ev, theta, c)
+    stats, per_block, block_times = _sides(ev, theta, c)
     block = BLOCK_FINE_S[-1]
     ev.measure_noise(tuple(theta), block)
     cov = _inverse_curvature(lambda th: ev.llr(th, block), theta)
@@ -420,7 +442,7 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6, max_steady_
     # the chosen one's own start: refined, its speed may have moved by more than
     # RIVAL_REL; nor one found to run along a steady line).
     best_sides = min(best_sides)
-    rivals = [f[1][0] for f in finals if f is not chosen and all(f is not o for o in on_lines) and (f[0] >= best_score - RIVAL_LLR or (f[0] >= RIVAL_SIDE_SHARE * best_score and min(f[3]) > best_sides))
+    rivals = [f[1][0] for f in finals if f is not chosen and all(f is not o for o in on_lines) and (f[0] >= best_score - RIVAL_LLR or (f[0] >= RIVAL_SIDE_SHARE * best_score and min(f[3]) > best_sides + RIVAL_SIDE_Z))
               and abs(math.log(f[1][0] / v)) > RIVAL_REL]
     log.debug("matched search: maxima (llr, km/h, m, tones, z before, z after) %s, chosen %d",
               [(round(f[0], 1), round(3.6 * f[1][0], 1), round(f[1][1], 2), f[2], round(f[3][0], 1), round(f[3][1], 1))
@@ -430,9 +452,105 @@ def matched_course(y, fs, t_y0, start, c, wind_mps=0.0, reach_s=0.6, max_steady_
     width = hi[:3] - lo[:3]
     margin = np.array([BOUND_REL, BOUND_REL, BOUND_REL * width[2]])
     at_bound = bool(np.any((u - lo[:3] < margin) | (hi[:3] - u < margin)))
+    rise, expected = _rise_db(per_block, theta, c, block_times)
     return MatchedCourse(v, d, t0, _sd(cov, 0), _sd(cov, 1), tones,
                          tuple(float(x) for x in per_block.sum(axis=1) - per_block.shape[1]),
-                         stats[0], stats[1], rival, steady, at_bound)
+                         stats[0], stats[1], rival, steady, at_bound, rise, expected)
+
+
+def without_steady_lines(y, fs, t_y0, heard, guard_s, band_hz=(0.0, math.inf)):
+    """The samples with the steady lines heard on both sides of a pass taken off.
+
+    A steady line (a transformer's hum, a fan at constant speed) near the
+    pitch of a plateau lifts a course drawn along it on that side of the
+    pass: the likeliest course of a passing car can then be several per
+    cent off in speed. Such a line is the same sinusoid before and after
+    the pass, where no tone of a vehicle is (its pitch falls across the
+    pass by ``2 v / c``). Each side (beyond ``guard_s`` of the pass heard
+    at ``heard``) is transformed with a Hann window [Harris]_; a line
+    stands out on both sides (LINE_PEAK_RATIO above the local median); its
+    frequency is refined on the two sides together, first on their powers,
+    then on their sum (one phase across the gap); its complex amplitude in
+    each half of each side must agree with their mean within
+    LINE_MAX_CHANGE; then the sinusoid of the mean amplitude is subtracted
+    from all the samples. A line whose pitch wanders (a fan) keeps no one
+    phase over the span and is left (subtracting it could add power).
+
+    Parameters
+    ----------
+    y : array_like
+        Samples (1-D) at rate ``fs``; ``y[0]`` heard at ``t_y0`` s.
+    fs, t_y0, heard, guard_s : float
+        Rate (Hz), time of ``y[0]``, the pass heard and the guard either side (s).
+    band_hz : (float, float)
+        Lines are looked for within this band, and below LINE_TOP_SHARE of the Nyquist rate.
+
+    Returns
+    -------
+    (ndarray, tuple of float)
+        The samples (float64, a copy) less the lines, and the lines' frequencies, Hz.
+
+    References
+    ----------
+    .. [Harris] F. J. Harris, "On the use of windows for harmonic analysis with the
+       discrete Fourier transform", Proc. IEEE 66(1), 51-83 (1978).
+
+    Examples
+    --------
+    A steady 400 Hz line under a pass heard at 3 s is taken off; noise stays:
+
+    >>> fs = 4000.0
+    >>> t = np.arange(int(6 * fs)) / fs
+    >>> noise = np.random.default_rng(2).normal(0.0, 0.1, t.size)
+    >>> clean, lines = without_steady_lines(np.sin(2 * np.pi * 400.2 * t + 1.0) + noise, fs, 0.0, 3.0, 0.6)
+    >>> [round(f, 1) for f in lines], bool(np.std(clean - noise) < 0.01)
+    ([400.2], True)
+    """
+    y = np.array(y, dtype=float)
+    t = t_y0 + np.arange(y.size) / fs
+    nb = int(np.sum(t < heard - guard_s))
+    na = int(np.sum(t > heard + guard_s))
+    n = min(nb, na, int(LINE_SIDE_MAX_S * fs))
+    if n < LINE_SIDE_MIN_S * fs:
+        return y, ()
+    ib, ia = nb - n, y.size - na           # first sample of each side's window (nearest the pass)
+    w = scipy.signal.get_window("hann", n)
+    nfft = scipy.fft.next_fast_len(2 * n)
+    df = fs / nfft
+    side = [y[i:i + n] * w for i in (ib, ia)]
+    power = [np.abs(scipy.fft.rfft(s, nfft)) ** 2 for s in side]
+    size = 2 * max(1, int(LINE_FLOOR_HZ / df)) + 1
+    ratio = np.minimum(*[p / np.maximum(scipy.ndimage.median_filter(p, size=size, mode="nearest"), 1e-300)
+                         for p in power])
+    f_bins = np.arange(ratio.size) * df
+    ratio[(f_bins < max(band_hz[0], 3 * df)) | (f_bins > min(band_hz[1], LINE_TOP_SHARE * fs / 2))] = 0.0
+    peaks, _ = scipy.signal.find_peaks(ratio, height=LINE_PEAK_RATIO, distance=max(1, int(2.0 / (n / fs) / df)))
+    peaks = peaks[np.argsort(-(power[0][peaks] + power[1][peaks]))][:LINE_MAX]
+    tt = [t[i:i + n] - heard for i in (ib, ia)]
+    h = n // 2
+    wh = scipy.signal.get_window("hann", h)
+
+    def sums(f):
+        return [np.dot(s, np.exp(-2j * np.pi * f * u)) for s, u in zip(side, tt)]
+
+    lines = []
+    gap = float(tt[1].mean() - tt[0].mean())     # between the two windows' centres, s
+    for k in peaks:
+        f0 = float(k) * df
+        r = scipy.optimize.minimize_scalar(lambda f: -sum(abs(x) ** 2 for x in sums(f)),
+                                           bounds=(f0 - df, f0 + df), method="bounded", options=dict(xatol=1e-4))
+        r = scipy.optimize.minimize_scalar(lambda f: -abs(sum(sums(f))) ** 2, bounds=(r.x - 0.5 / gap, r.x + 0.5 / gap),
+                                           method="bounded", options=dict(xatol=1e-5))
+        f = float(r.x)
+        a = sum(2.0 * x / w.sum() for x in sums(f)) / 2.0
+        # One phase and amplitude over the whole span: each half of each side agrees with their mean.
+        halves = [2.0 * np.dot(y[i:i + h] * wh, np.exp(-2j * np.pi * f * (t[i:i + h] - heard))) / wh.sum()
+                  for i in (ib, ib + h, ia, ia + h)]
+        if max(abs(x - a) for x in halves) > LINE_MAX_CHANGE * abs(a):
+            continue
+        y -= np.real(a * np.exp(2j * np.pi * f * (t - heard)))
+        lines.append(f)
+    return y, tuple(lines)
 
 
 def _segment(y, fs, t_y0, start, c, reach_s):
@@ -528,7 +646,25 @@ def _sides(ev, theta, c):
     _, _, per_block, tb = ev.llr(tuple(theta), BLOCK_COARSE_S, best_offsets=True)
     at = heard_s(theta, c)
     flat = [per_block[:, side].reshape(1, -1) for side in (tb < at, tb > at)]
-    return [float(_z(f)[0]) for f in flat], per_block
+    return [float(_z(f)[0]) for f in flat], per_block, tb
+
+
+def _rise_db(per_block, theta, c, tb):
+    """The rise of the evidence at the pass, measured and along ``theta`` (see :class:`MatchedCourse`), dB.
+
+    Expected: the mean of ``(d / r)^2`` (spherical spreading of the
+    amplitude; ``r`` at the time heard less ``d / c``, near enough here)
+    over the same blocks.
+    """
+    v, d, t0 = (float(x) for x in theta[:3])
+    lag = np.abs(tb - heard_s(theta, c))
+    near, far = lag <= RISE_NEAR_S, lag >= RISE_FAR_S
+    if not near.any() or not far.any():
+        return math.nan, math.nan
+    excess = np.maximum(per_block.sum(axis=0) - per_block.shape[0], 0.0)
+    spread = d ** 2 / (d ** 2 + (v * (tb - heard_s(theta, c))) ** 2)
+    measured = 10.0 * math.log10(max(excess[near].mean(), 1e-12) / max(excess[far].mean(), 1e-12))
+    return measured, 10.0 * math.log10(spread[near].mean() / spread[far].mean())
 
 
 def _z(per_block):
